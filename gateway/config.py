@@ -1,0 +1,339 @@
+"""Configuration: pydantic models per section, loaded from TOML with environment overrides.
+
+Precedence, lowest first: built-in defaults, the TOML file, ``BOUTLINE_<SECTION>_<KEY>``
+environment variables (e.g. ``BOUTLINE_MQTT_HOST=10.0.0.5``). Secrets (the MQTT password and
+the InfluxDB password/token) come from ``BOUTLINE_MQTT_PASSWORD`` / ``BOUTLINE_INFLUX_TOKEN``
+style variables or from a file named by ``password_file`` / ``token_file``; they are held as
+``SecretStr`` and never printed.
+
+>>> cfg = Settings()
+>>> cfg.mqtt.port, cfg.http.bind
+(1883, '127.0.0.1')
+"""
+
+from __future__ import annotations
+
+import os
+import re
+import tomllib
+from pathlib import Path
+from typing import Any, Literal
+from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
+
+from pydantic import (
+    BaseModel,
+    ConfigDict,
+    Field,
+    SecretStr,
+    ValidationError,
+    field_validator,
+    model_validator,
+)
+
+from .errors import ConfigError
+
+__all__ = [
+    "ENV_PREFIX",
+    "HttpSettings",
+    "InfluxSettings",
+    "LimitsSettings",
+    "ModelSettings",
+    "MqttSettings",
+    "OutputsSettings",
+    "Settings",
+    "SiteSettings",
+    "StoreSettings",
+    "WindowsSettings",
+    "effective_settings",
+    "load_settings",
+    "to_toml",
+]
+
+ENV_PREFIX = "BOUTLINE_"
+_ID = r"^[A-Za-z0-9_.-]{1,64}$"
+# Size cap for a config file: a real one is a few kB; anything huge is a mistake or hostile.
+_MAX_CONFIG_BYTES = 1_000_000
+_CONTROL = re.compile(r"[\x00-\x1f]")
+
+
+class _Section(BaseModel):
+    model_config = ConfigDict(extra="forbid", validate_default=True, frozen=True)
+
+
+class SiteSettings(_Section):
+    """Where the gateway stands and how days are counted."""
+
+    id: str = Field("home-farm", pattern=_ID, description="site segment of every topic")
+    timezone: str = Field("UTC", description="IANA zone for local days, e.g. Europe/Dublin")
+    day_start_hour: int = Field(0, ge=0, le=23, description="hour a budget day starts")
+    assignments: str = Field("", description="collar->animal CSV or TOML; empty: none")
+    unknown_collars: Literal["adopt", "refuse"] = Field(
+        "adopt", description="adopt: an unknown collar becomes an animal named after it"
+    )
+
+    @field_validator("timezone")
+    @classmethod
+    def _zone(cls, v: str) -> str:
+        try:
+            ZoneInfo(v)
+        except (ZoneInfoNotFoundError, ValueError) as exc:
+            raise ValueError("not an IANA time zone name such as Europe/Dublin or UTC") from exc
+        return v
+
+
+class MqttSettings(_Section):
+    """The broker collars publish to, and that barn displays read from."""
+
+    host: str = Field("127.0.0.1", min_length=1)
+    port: int = Field(1883, ge=1, le=65535)
+    protocol: Literal["5", "3.1.1"] = "5"
+    client_id: str = Field("boutline-gateway", pattern=r"^[A-Za-z0-9_.-]{1,64}$")
+    topic_prefix: str = Field("barn", pattern=r"^[A-Za-z0-9_.-]+(/[A-Za-z0-9_.-]+)*$")
+    qos: Literal[0, 1] = 1
+    keepalive_s: int = Field(30, ge=5, le=3600)
+    session_expiry_s: int = Field(86400, ge=0, le=2**32 - 1)
+    reconnect_min_s: float = Field(1.0, gt=0, le=60)
+    reconnect_max_s: float = Field(60.0, gt=0, le=3600)
+    username: str = ""
+    password: SecretStr = SecretStr("")
+    password_file: str = ""
+    tls: bool = False
+    ca_file: str = ""
+    cert_file: str = ""
+    key_file: str = ""
+
+    @model_validator(mode="after")
+    def _check(self) -> MqttSettings:
+        if self.reconnect_max_s < self.reconnect_min_s:
+            raise ValueError("reconnect_max_s must be >= reconnect_min_s")
+        if bool(self.cert_file) != bool(self.key_file):
+            raise ValueError("cert_file and key_file go together: give both or neither")
+        if (self.cert_file or self.ca_file) and not self.tls:
+            raise ValueError("ca_file/cert_file given but tls = false: set tls = true")
+        return self
+
+
+class ModelSettings(_Section):
+    path: str = Field("", description="ONNX model file; empty: the shipped default")
+    watch: bool = Field(True, description="hot-reload when the file changes or on SIGHUP")
+    batch_max: int = Field(4096, ge=1, le=65536, description="windows per inference call")
+
+
+class WindowsSettings(_Section):
+    """Ring buffers and how much imperfection a window may carry."""
+
+    max_missing: float = Field(0.2, ge=0, le=0.9, description="share of a window that may be gap")
+    reorder_s: float = Field(5.0, ge=0, le=120, description="late frames accepted within this")
+    buffer_s: float = Field(60.0, ge=10, le=3600, description="ring buffer length per animal")
+    clock_future_s: float = Field(300.0, ge=0, le=86400)
+    clock_past_s: float = Field(86400.0, ge=0, le=30 * 86400)
+    clock_rule: Literal["substitute", "reject"] = Field(
+        "substitute", description="a frame outside the clock bounds: receive time or reject"
+    )
+
+
+class StoreSettings(_Section):
+    data_dir: str = Field("~/.local/share/boutline", min_length=1)
+    checkpoint_pages: int = Field(1000, ge=100, le=1_000_000, description="WAL autocheckpoint")
+    commit_interval_s: float = Field(1.0, gt=0, le=60, description="batch writes this long")
+    outbox_max_mb: float = Field(200.0, gt=0, le=100_000)
+    retention_days: int = Field(400, ge=1, le=36500)
+
+
+class InfluxSettings(_Section):
+    enabled: bool = False
+    api: Literal["v1", "v2"] = "v2"
+    url: str = Field("http://127.0.0.1:8086", pattern=r"^https?://[^\s/]+(/.*)?$")
+    # v1: InfluxDB 1.x and the 1.x compatibility API of later versions
+    database: str = "boutline"
+    retention_policy: str = ""
+    username: str = ""
+    password: SecretStr = SecretStr("")
+    password_file: str = ""
+    # v2
+    org: str = "home-farm"
+    bucket: str = "boutline"
+    token: SecretStr = SecretStr("")
+    token_file: str = ""
+    batch_size: int = Field(1000, ge=1, le=100_000)
+    flush_interval_s: float = Field(5.0, gt=0, le=3600)
+    timeout_s: float = Field(10.0, gt=0, le=300)
+    retry_max_s: float = Field(300.0, gt=0, le=86400)
+    verify_tls: bool = True
+
+
+class OutputsSettings(_Section):
+    mqtt: bool = Field(True, description="publish state, bouts, alerts and status to MQTT")
+    state_retained: bool = True
+    qos: Literal[0, 1] = 1
+
+
+class HttpSettings(_Section):
+    enabled: bool = True
+    bind: str = Field("127.0.0.1", min_length=1, description="loopback unless you mean it")
+    port: int = Field(8787, ge=1, le=65535)
+
+
+class LimitsSettings(_Section):
+    max_payload_bytes: int = Field(65536, ge=64, le=1_048_576)
+    max_samples: int = Field(1024, ge=1, le=1024)
+    max_collars: int = Field(12000, ge=1, le=1_000_000)
+    max_frame_rate_hz: float = Field(
+        5.0, gt=0, le=1000, description="per collar; frames above it are dropped and counted"
+    )
+    log_every_s: float = Field(60.0, ge=0, le=3600, description="rate limit of reject logs")
+
+
+class Settings(BaseModel):
+    """Every section; unknown sections and keys are errors (typos must not pass silently)."""
+
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+    site: SiteSettings = SiteSettings()
+    mqtt: MqttSettings = MqttSettings()
+    model: ModelSettings = ModelSettings()
+    windows: WindowsSettings = WindowsSettings()
+    store: StoreSettings = StoreSettings()
+    influx: InfluxSettings = InfluxSettings()
+    outputs: OutputsSettings = OutputsSettings()
+    http: HttpSettings = HttpSettings()
+    limits: LimitsSettings = LimitsSettings()
+
+    @property
+    def data_dir(self) -> Path:
+        return Path(os.path.expanduser(self.store.data_dir))
+
+
+_SECRET_FILES = {
+    ("mqtt", "password"): "password_file",
+    ("influx", "password"): "password_file",
+    ("influx", "token"): "token_file",
+}
+
+
+def _env_overrides(env: dict[str, str]) -> dict[str, dict[str, str]]:
+    sections = set(Settings.model_fields)
+    out: dict[str, dict[str, str]] = {}
+    for name, value in env.items():
+        if not name.startswith(ENV_PREFIX):
+            continue
+        rest = name[len(ENV_PREFIX) :].lower()
+        section, _, key = rest.partition("_")
+        if section in sections and key:
+            out.setdefault(section, {})[key] = value
+    return out
+
+
+def _read_secret_file(path: str, where: str) -> str:
+    p = Path(os.path.expanduser(path))
+    try:
+        if p.stat().st_size > 65536:
+            raise ConfigError(f"{where}: {p} is larger than 64 KiB; it should hold one secret")
+        return p.read_text(encoding="utf-8").strip()
+    except OSError as exc:
+        raise ConfigError(f"{where}: cannot read {p} ({exc.strerror}); check the path") from exc
+    except UnicodeDecodeError as exc:
+        raise ConfigError(f"{where}: {p} is not UTF-8 text") from exc
+
+
+def _deep_merge(base: dict[str, Any], over: dict[str, Any]) -> dict[str, Any]:
+    merged = dict(base)
+    for k, v in over.items():
+        if isinstance(v, dict) and isinstance(merged.get(k), dict):
+            merged[k] = {**merged[k], **v}
+        else:
+            merged[k] = v
+    return merged
+
+
+def _format_errors(exc: ValidationError, data: dict[str, Any]) -> list[str]:
+    problems = []
+    for err in exc.errors():
+        loc = ".".join(str(p) for p in err["loc"])
+        value = data
+        for part in err["loc"]:
+            value = value.get(part) if isinstance(value, dict) else None  # type: ignore[assignment]
+        msg = err["msg"]
+        if err["type"] == "extra_forbidden":
+            problems.append(f"{loc}: unknown key; check the spelling against boutline.example.toml")
+            continue
+        if err["type"] == "literal_error":
+            msg = msg.replace("Input should be", "allowed:")
+        shown = "****" if loc.endswith(("password", "token")) else repr(value)[:60]
+        problems.append(f"{loc} = {shown}: {msg}")
+    return problems
+
+
+def load_settings(path: str | Path | None = None, env: dict[str, str] | None = None) -> Settings:
+    """Read a TOML file (optional) plus environment overrides; raise ConfigError listing problems."""
+    env = dict(os.environ) if env is None else env
+    data: dict[str, Any] = {}
+    if path is not None:
+        p = Path(path)
+        try:
+            raw = p.read_bytes()
+        except OSError as exc:
+            raise ConfigError(f"cannot read config file {p}: {exc.strerror}") from exc
+        if len(raw) > _MAX_CONFIG_BYTES:
+            raise ConfigError(f"config file {p} is {len(raw)} bytes; a config is a few kB")
+        try:
+            data = tomllib.loads(raw.decode("utf-8"))
+        except UnicodeDecodeError as exc:
+            raise ConfigError(f"config file {p} is not UTF-8 text (byte {exc.start})") from exc
+        except tomllib.TOMLDecodeError as exc:
+            raise ConfigError(f"config file {p} is not valid TOML: {exc}") from exc
+    problems = [
+        f"{k}: unknown section; allowed: {', '.join(Settings.model_fields)}"
+        for k, v in data.items()
+        if k not in Settings.model_fields or not isinstance(v, dict)
+    ]
+    data = {k: v for k, v in data.items() if k in Settings.model_fields and isinstance(v, dict)}
+    data = _deep_merge(data, _env_overrides(env))
+    for (section, key), file_key in _SECRET_FILES.items():
+        sec = data.get(section, {})
+        if sec.get(file_key) and not sec.get(key):
+            try:
+                sec[key] = _read_secret_file(sec[file_key], f"{section}.{file_key}")
+            except ConfigError as exc:
+                problems.append(str(exc))
+    try:
+        settings = Settings.model_validate(data)
+    except ValidationError as exc:
+        problems.extend(_format_errors(exc, data))
+        settings = None
+    if problems or settings is None:
+        raise ConfigError(f"{len(problems)} problem(s) in the configuration", problems=problems)
+    return settings
+
+
+def _mask(value: Any) -> Any:
+    if isinstance(value, SecretStr):
+        return "****" if value.get_secret_value() else ""
+    if isinstance(value, dict):
+        return {k: _mask(v) for k, v in value.items()}
+    return value
+
+
+def effective_settings(settings: Settings) -> dict[str, dict[str, Any]]:
+    """Every setting as plain values, secrets replaced by ``****`` (never echoed)."""
+    return {name: _mask(dict(getattr(settings, name))) for name in Settings.model_fields}
+
+
+def to_toml(settings: Settings) -> str:
+    """Render effective settings as TOML text (secrets masked)."""
+    lines: list[str] = []
+    for section, values in effective_settings(settings).items():
+        lines.append(f"[{section}]")
+        for k, v in values.items():
+            lines.append(f"{k} = {_toml_value(v)}")
+        lines.append("")
+    return "\n".join(lines)
+
+
+def _toml_value(v: Any) -> str:
+    if isinstance(v, bool):
+        return "true" if v else "false"
+    if isinstance(v, int | float):
+        return repr(v)
+    s = _CONTROL.sub("", str(v)).replace("\\", "\\\\").replace('"', '\\"')
+    return f'"{s}"'
