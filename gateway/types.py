@@ -21,6 +21,7 @@ __all__ = [
     "Decision",
     "Frame",
     "NO_DATA",
+    "NoDataHop",
     "Posteriors",
     "StateChanged",
     "WindowBatch",
@@ -92,6 +93,19 @@ class Posteriors:
     animal: str
     t_start: float
     p: np.ndarray
+    ready_at: float = 0.0
+
+
+@dataclass(slots=True)
+class NoDataHop:
+    """Time of one animal that could not be classified (collar silent, window too gappy).
+
+    Goes to the smoother in place of a Posteriors; ``duration_s`` may span many hops.
+    """
+
+    animal: str
+    t: float
+    duration_s: float
     ready_at: float = 0.0
 
 
