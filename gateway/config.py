@@ -45,6 +45,7 @@ __all__ = [
     "StoreSettings",
     "WindowsSettings",
     "effective_settings",
+    "example_toml",
     "load_settings",
     "to_toml",
 ]
@@ -280,8 +281,8 @@ def load_settings(path: str | Path | None = None, env: dict[str, str] | None = N
             data = tomllib.loads(raw.decode("utf-8"))
         except UnicodeDecodeError as exc:
             raise ConfigError(f"config file {p} is not UTF-8 text (byte {exc.start})") from exc
-        except tomllib.TOMLDecodeError as exc:
-            raise ConfigError(f"config file {p} is not valid TOML: {exc}") from exc
+        except ValueError as exc:  # TOMLDecodeError, and ints beyond Python's digit limit
+            raise ConfigError(f"config file {p} is not valid TOML: {str(exc)[:200]}") from exc
     problems = [
         f"{k}: unknown section; allowed: {', '.join(Settings.model_fields)}"
         for k, v in data.items()
@@ -302,7 +303,7 @@ def load_settings(path: str | Path | None = None, env: dict[str, str] | None = N
         problems.extend(_format_errors(exc, data))
         settings = None
     if problems or settings is None:
-        raise ConfigError(f"{len(problems)} problem(s) in the configuration", problems=problems)
+        raise ConfigError("; ".join(problems), problems=problems)
     return settings
 
 
@@ -337,3 +338,27 @@ def _toml_value(v: Any) -> str:
         return repr(v)
     s = _CONTROL.sub("", str(v)).replace("\\", "\\\\").replace('"', '\\"')
     return f'"{s}"'
+
+
+def example_toml() -> str:
+    """A fully commented config: every commented value is the default (boutline.example.toml)."""
+    out = [
+        "# Boutline gateway configuration. Every commented value below is the default;",
+        "# uncomment and change what you need. Any key can also be set from the environment",
+        "# as BOUTLINE_<SECTION>_<KEY>, e.g. BOUTLINE_MQTT_HOST=10.0.0.5. Secrets (mqtt.password,",
+        "# influx.password, influx.token) belong in the environment or in a file named by",
+        "# *_file, never in this file. Check a file with: boutline config check FILE",
+        "",
+    ]
+    for name, info in Settings.model_fields.items():
+        section = info.annotation
+        doc = (section.__doc__ or "").strip().splitlines()
+        out.append(f"[{name}]" + (f"  # {doc[0]}" if doc else ""))
+        for key, f in section.model_fields.items():  # type: ignore[union-attr]
+            value = _toml_value(_mask(f.default))
+            line = f"# {key} = {value}"
+            if f.description:
+                line = f"{line:<44}  # {f.description}"
+            out.append(line)
+        out.append("")
+    return "\n".join(out)

@@ -10,6 +10,8 @@ from collections.abc import Iterator
 from pathlib import Path
 
 import pytest
+from hypothesis import HealthCheck
+from hypothesis import settings as hypothesis_settings
 
 from gateway.servers import (
     ServerProcess,
@@ -19,6 +21,12 @@ from gateway.servers import (
 )
 
 SERVERS = Path(__file__).parent / "servers"
+
+# Two shared cores: generation speed varies with load, so no per-example deadline.
+hypothesis_settings.register_profile(
+    "boutline", deadline=None, suppress_health_check=[HealthCheck.too_slow]
+)
+hypothesis_settings.load_profile("boutline")
 
 
 @pytest.fixture(scope="session")

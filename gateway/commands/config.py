@@ -26,12 +26,12 @@ def check(
     typer.echo(to_toml(settings))
 
 
-@app.command("defaults")
-def defaults() -> None:
-    """Print every setting with its default value, as TOML.
+@app.command("example")
+def example() -> None:
+    """Print a fully commented config in which every commented value is the default.
 
-    Example: boutline config defaults > boutline.toml
+    Example: boutline config example > /etc/boutline/boutline.toml
     """
-    from ..config import Settings, to_toml
+    from ..config import example_toml
 
-    typer.echo(to_toml(Settings()))
+    typer.echo(example_toml(), nl=False)
