@@ -86,7 +86,7 @@ def test_arbitrary_json_objects_never_raise(obj: dict) -> None:
 def test_json_round_trip(frame: Frame) -> None:
     got = _assert_frame(decode(encode_json(frame), "C0001"))
     assert got.seq == frame.seq and got.hz == frame.hz
-    assert got.t == pytest.approx(frame.t, abs=5e-4)  # written in ms
+    assert got.t == pytest.approx(frame.t, abs=5.001e-4)  # written in ms
     assert np.abs(got.acc - frame.acc).max() <= 5.1e-5  # 4 decimals
     if frame.battery_v is None:
         assert got.battery_v is None
@@ -99,7 +99,7 @@ def test_json_round_trip(frame: Frame) -> None:
 def test_binary_round_trip(frame: Frame) -> None:
     got = _assert_frame(decode(encode_binary(frame), "C0001"))
     assert got.seq == frame.seq and got.hz == frame.hz
-    assert got.t == pytest.approx(frame.t, abs=5e-4)
+    assert got.t == pytest.approx(frame.t, abs=5.001e-4)  # ms resolution
     lsb = 8.0 / 32767
     assert np.abs(got.acc - frame.acc).max() <= lsb / 2 + 1e-6
 
