@@ -7,7 +7,8 @@ from pathlib import Path
 import typer
 
 app = typer.Typer(
-    help="Check configuration files and show effective settings.", no_args_is_help=True
+    help="Check configuration files and show effective settings.\n\nExample: boutline config check boutline.toml",
+    no_args_is_help=True,
 )
 
 
