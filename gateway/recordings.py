@@ -25,7 +25,6 @@ from __future__ import annotations
 import csv
 import io
 import math
-import re
 from collections import Counter
 from collections.abc import Iterable
 from dataclasses import dataclass, field
@@ -35,6 +34,8 @@ from pathlib import Path
 import numpy as np
 
 from .errors import DataError
+from .registry import Assignment, Registry, load_assignments
+from .wire import COLLAR_ID_RE
 
 __all__ = [
     "Assignment",
@@ -48,12 +49,10 @@ __all__ = [
     "read_recording",
 ]
 
-COLLAR_ID_RE = re.compile(r"[A-Za-z0-9_.-]{1,64}")
 # Collars are specified to +/-16 g at most (DESIGN.md, frames); beyond that a row is damage.
 MAX_ABS_G = 16.0
 MAX_FIELD_CHARS = 256  # a longer CSV field is not a name or a number: refuse it
 OBS_COLUMNS = ("animal", "collar", "start", "end", "behaviour")
-ASSIGN_COLUMNS = ("collar", "animal", "from", "to")
 RAW_COLUMNS = ("t", "ax", "ay", "az")
 
 
@@ -97,20 +96,6 @@ class Observation:
     end: float
     behaviour: str
     line: int = 0
-
-
-@dataclass(frozen=True, slots=True)
-class Assignment:
-    """A collar fitted to an animal from ``valid_from``; ``valid_to`` None = still fitted."""
-
-    collar: str
-    animal: str
-    valid_from: float
-    valid_to: float | None = None
-
-    def covers(self, start: float, end: float) -> bool:
-        """True when the collar was on this animal during all of ``[start, end)``."""
-        return self.valid_from <= start and (self.valid_to is None or end <= self.valid_to)
 
 
 def _open_csv(path: Path, columns: tuple[str, ...]) -> tuple[csv.DictReader, io.TextIOBase]:
@@ -198,40 +183,14 @@ def read_observations(path: str | Path, counts: Counter[str] | None = None) -> l
 
 
 def read_assignments(path: str | Path) -> list[Assignment]:
-    """Collar assignments from ``assignments.csv``, checked for consistency.
+    """Collar assignments from ``assignments.csv`` (the gateway registry's own reader).
 
-    Raises DataError for a bad header or time, ``to`` not after ``from``, or one collar
-    fitted to two animals over overlapping periods.
+    Raises DataError for a bad header or time, ``to`` not after ``from``, or a collar on two
+    animals (or an animal wearing two collars) at once.
     """
-    p = Path(path)
-    reader, f = _open_csv(p, ASSIGN_COLUMNS)
-    out: list[tuple[int, Assignment]] = []
-    with f:
-        for line, row in _rows(reader, p):
-            start = _time(row["from"], "from", p, line)
-            to = row["to"].strip()
-            end = _time(to, "to", p, line) if to else None
-            if end is not None and end <= start:
-                raise DataError(f"{p} line {line}: 'to' must be after 'from'")
-            a = Assignment(
-                _name(row["collar"], "collar", p, line),
-                _name(row["animal"], "animal", p, line),
-                start,
-                end,
-            )
-            out.append((line, a))
-    by_collar: dict[str, list[tuple[int, Assignment]]] = {}
-    for line, a in out:
-        by_collar.setdefault(a.collar, []).append((line, a))
-    for collar, items in by_collar.items():
-        items.sort(key=lambda la: la[1].valid_from)
-        for (l1, a1), (l2, a2) in zip(items, items[1:], strict=False):
-            if a1.valid_to is None or a1.valid_to > a2.valid_from:
-                raise DataError(
-                    f"{p} lines {l1} and {l2}: collar {collar} is fitted to {a1.animal} and"
-                    f" {a2.animal} at the same time; end the first assignment first"
-                )
-    return [a for _, a in out]
+    items = load_assignments(path)
+    Registry(items)  # checks the overlaps
+    return items
 
 
 def _clean(t: np.ndarray, acc: np.ndarray, path: Path) -> tuple[np.ndarray, np.ndarray, int]:
@@ -379,7 +338,8 @@ def _usable_observations(
             counts["interval on a collar without a recording"] += 1
             continue
         if assignments is not None and not any(
-            a.animal == o.animal and a.covers(o.start, o.end) for a in by_collar.get(o.collar, [])
+            a.animal == o.animal and a.valid_from <= o.start and o.end <= a.valid_to
+            for a in by_collar.get(o.collar, [])
         ):
             counts["interval disagrees with assignments"] += 1
             continue
