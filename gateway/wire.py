@@ -80,6 +80,7 @@ class Reason(StrEnum):
     DUPLICATE = "duplicate"
     RATE_LIMITED = "rate_limited"
     COLLAR_CAP = "collar_cap"
+    LATE = "late"  # older than the reorder tolerance: its slot in the window was already used
 
 
 @dataclass(frozen=True, slots=True)
