@@ -10,8 +10,8 @@ are the inverse, used by the simulator and by collar firmware authors as a refer
 ...           acc=np.array([[0.01, -0.98, 0.12]] * 10, dtype=np.float32), battery_v=3.9)
 >>> decode(encode_binary(f), "C0001").seq
 7
->>> decode(b"{not json", "C0001").reason
-'bad_json'
+>>> print(decode(b"{not json", "C0001").reason)
+bad_json
 """
 
 from __future__ import annotations
@@ -123,8 +123,8 @@ def parse_topic(topic: str, prefix: str = "barn") -> tuple[str, str] | Rejection
 
     >>> parse_topic("barn/north-shed/collars/C0001/accel")
     ('north-shed', 'C0001')
-    >>> parse_topic("barn/x/collars/bad id/accel").reason
-    'bad_collar_id'
+    >>> print(parse_topic("barn/x/collars/bad id/accel").reason)
+    bad_collar_id
     """
     pre = prefix.strip("/")
     parts = topic.split("/")
