@@ -100,7 +100,9 @@ class Posteriors:
 class NoDataHop:
     """Time of one animal that could not be classified (collar silent, window too gappy).
 
-    Goes to the smoother in place of a Posteriors; ``duration_s`` may span many hops.
+    Goes to the smoother in place of a Posteriors. ``t`` is on the same clock as
+    ``Posteriors.t_start`` (the start of the first window that could not be classified);
+    ``duration_s`` is a whole number of hops and may span many.
     """
 
     animal: str
