@@ -34,6 +34,7 @@ from .errors import ConfigError
 
 __all__ = [
     "ENV_PREFIX",
+    "BoutsSettings",
     "HttpSettings",
     "InfluxSettings",
     "LimitsSettings",
@@ -42,6 +43,7 @@ __all__ = [
     "OutputsSettings",
     "Settings",
     "SiteSettings",
+    "SmoothingSettings",
     "StoreSettings",
     "WindowsSettings",
     "effective_settings",
@@ -133,6 +135,59 @@ class WindowsSettings(_Section):
     )
 
 
+class SmoothingSettings(_Section):
+    """Online HMM over the model's posteriors (gateway/smoothing.py); values: common practice, no source."""
+
+    lag_s: float = Field(60.0, ge=0, le=3600, description="a hop is decided this much later")
+    bridge_s: float = Field(60.0, ge=0, le=3600, description="no-data up to this is bridged")
+    prior: Literal["card", "stationary", "uniform"] = Field(
+        "card", description="posteriors / prior; card: class_prior, else stationary"
+    )
+    dwell_s: float = Field(300.0, gt=0, le=86400, description="mean bout, model w/o transitions")
+
+
+def _bout_min(default: float, why: str) -> Any:
+    return Field(default, ge=0, le=86400, description=f"runs <= this are no bout; {why}")
+
+
+def _bout_gap(default: float, why: str) -> Any:
+    return Field(default, ge=0, le=86400, description=f"gaps < this are bridged; {why}")
+
+
+# Meal criteria span 1.9-49.1 min by method (Tolkamp & Kyriazakis, FIELD.md); 5 min is our
+# pick inside that range. It bridges only no-data and fragments: a real bout of another
+# behaviour always ends the meal (gateway/bouts.py).
+_MEAL = "Tolkamp & Kyriazakis range"
+_CP = "common practice, no source"
+
+
+class BoutsSettings(_Section):
+    """Per-behaviour minimum bout and bout criterion interval, seconds (gateway/bouts.py)."""
+
+    grazing_min_s: float = _bout_min(60.0, _CP)
+    grazing_criterion_s: float = _bout_gap(300.0, _MEAL)
+    feeding_min_s: float = _bout_min(60.0, _CP)
+    feeding_criterion_s: float = _bout_gap(300.0, _MEAL)
+    # About two cud cycles of ~46 s (Braun et al. 2015, FIELD.md).
+    ruminating_min_s: float = _bout_min(90.0, "two cud cycles, Braun 2015")
+    ruminating_criterion_s: float = _bout_gap(300.0, _CP)
+    # Lying: single readings of <= 1 min are dropped (Bonk et al. 2013, J Dairy Sci, FIELD.md).
+    resting_min_s: float = _bout_min(60.0, "Bonk et al. 2013")
+    resting_criterion_s: float = _bout_gap(300.0, _CP)
+    walking_min_s: float = _bout_min(10.0, _CP)
+    walking_criterion_s: float = _bout_gap(30.0, _CP)
+    other_min_s: float = _bout_min(60.0, "classes not named above; " + _CP)
+    other_criterion_s: float = _bout_gap(120.0, "classes not named above; " + _CP)
+
+    def min_bout_s(self, behaviour: str) -> float:
+        """Minimum bout of a class; ``other_min_s`` for classes without their own key."""
+        return float(getattr(self, f"{behaviour}_min_s", self.other_min_s))
+
+    def criterion_s(self, behaviour: str) -> float:
+        """Bout criterion interval of a class; ``other_criterion_s`` without its own key."""
+        return float(getattr(self, f"{behaviour}_criterion_s", self.other_criterion_s))
+
+
 class StoreSettings(_Section):
     data_dir: str = Field("~/.local/share/boutline", min_length=1)
     checkpoint_pages: int = Field(1000, ge=100, le=1_000_000, description="WAL autocheckpoint")
@@ -194,6 +249,8 @@ class Settings(BaseModel):
     mqtt: MqttSettings = MqttSettings()
     model: ModelSettings = ModelSettings()
     windows: WindowsSettings = WindowsSettings()
+    smoothing: SmoothingSettings = SmoothingSettings()
+    bouts: BoutsSettings = BoutsSettings()
     store: StoreSettings = StoreSettings()
     influx: InfluxSettings = InfluxSettings()
     outputs: OutputsSettings = OutputsSettings()
