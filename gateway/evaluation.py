@@ -162,17 +162,17 @@ def render_markdown(report: dict[str, Any]) -> str:
         lines += ["", "Dropped or skipped (reason: count):", ""]
         lines += [f"- {k}: {v}" for k, v in dropped.items()] or ["- none"]
     lines.append("")
-    for key, title in report.get("sections", []):
-        if key in report:
-            lines += _scores_md(title, report[key], classes)
-    if report.get("baseline"):
-        b = report["baseline"]
-        lines += [
-            "### Majority-class baseline",
-            "",
-            f"always `{b['class']}`: accuracy {b['accuracy']:.3f}, macro-F1 {b['macro_f1']:.3f}",
-            "",
-        ]
+    for key, title, *base_key in report.get("sections", []):
+        if key not in report:
+            continue
+        lines += _scores_md(title, report[key], classes)
+        b = report.get(base_key[0]) if base_key else None
+        if b:
+            lines += [
+                f"Majority-class baseline: always `{b['class']}`, accuracy {b['accuracy']:.3f},"
+                f" macro-F1 {b['macro_f1']:.3f}",
+                "",
+            ]
     return "\n".join(lines).rstrip() + "\n"
 
 
@@ -231,7 +231,7 @@ def write_report(report: dict[str, Any], prefix: str | Path) -> list[Path]:
     paths["json"].write_text(json.dumps(report, indent=2) + "\n", encoding="utf-8")
     paths["md"].write_text(render_markdown(report), encoding="utf-8")
     written = [paths["md"], paths["json"]]
-    key, title = (report.get("sections") or [(None, "")])[-1]
+    key, title, *_ = (report.get("sections") or [(None, "")])[-1]
     if key and key in report:
         s = Scores(tuple(report["classes"]), np.asarray(report[key]["confusion"]))
         if _plot_confusion(s, title, paths["png"]):
@@ -304,7 +304,7 @@ def evaluate_on_recordings(
         "recordings": str(path),
         "classes": list(model.classes),
         "data": data_summary(len(animals), collars, yt, model.classes, counts),
-        "sections": [["evaluation", "Scores on these recordings"]],
+        "sections": [["evaluation", "Scores on these recordings", "baseline"]],
         "evaluation": s.to_json(),
         "baseline": baseline_json(base, yt),
     }

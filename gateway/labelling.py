@@ -54,11 +54,19 @@ class LabelledWindows:
         return int(self.y.size)
 
 
-def _box_filter(acc: np.ndarray, n: int) -> np.ndarray:
-    if n <= 1:
+def _box_filter(t: np.ndarray, acc: np.ndarray, n: int, gap_s: float) -> np.ndarray:
+    """Centred moving average over n samples (odd), never across a gap; near a gap or an
+    end the span shrinks symmetrically, so the filter never shifts time."""
+    h = n // 2
+    if h < 1:
         return acc
-    kernel = np.ones(n) / n
-    return np.stack([np.convolve(acc[:, i], kernel, mode="same") for i in range(3)], axis=1)
+    i = np.arange(t.size)
+    seg = np.concatenate([[0], np.cumsum(np.diff(t) > gap_s)])
+    first = np.searchsorted(seg, seg, side="left")
+    last = np.searchsorted(seg, seg, side="right") - 1
+    hw = np.minimum(h, np.minimum(i - first, last - i))
+    cum = np.concatenate([np.zeros((1, 3)), np.cumsum(acc, axis=0)])
+    return (cum[i + hw + 1] - cum[i - hw]) / (2 * hw + 1)[:, None]
 
 
 def grid_samples(rec: Recording, rate_hz: float) -> tuple[float, np.ndarray, np.ndarray]:
@@ -78,7 +86,7 @@ def grid_samples(rec: Recording, rate_hz: float) -> tuple[float, np.ndarray, np.
     valid = exact | ((t[nxt] - t[j] <= GAP_FACTOR * period) & (nxt > j))
     acc = rec.acc.astype(np.float64)
     if rec.hz > rate_hz * 1.01:
-        acc = _box_filter(acc, int(round(rec.hz / rate_hz)))
+        acc = _box_filter(t, acc, int(round(rec.hz / rate_hz)), GAP_FACTOR * period)
     out = np.empty((m, 3), dtype=np.float32)
     for i in range(3):
         out[:, i] = np.interp(grid, t, acc[:, i])

@@ -25,6 +25,7 @@ from __future__ import annotations
 import csv
 import io
 import math
+import warnings
 from collections import Counter
 from collections.abc import Iterable
 from dataclasses import dataclass, field
@@ -219,7 +220,9 @@ def _read_csv_recording(path: Path) -> tuple[np.ndarray, np.ndarray, int]:
                     f"{path}: header must be {','.join(RAW_COLUMNS)}, is {header[:60]!r}"
                 )
             try:
-                data = np.loadtxt(f, delimiter=",", dtype=np.float64, ndmin=2)
+                with warnings.catch_warnings():
+                    warnings.simplefilter("ignore", UserWarning)  # "input contained no data"
+                    data = np.loadtxt(f, delimiter=",", dtype=np.float64, ndmin=2)
             except ValueError:
                 data = None
     except (OSError, UnicodeDecodeError) as exc:
@@ -255,7 +258,7 @@ def _parse_csv_slowly(path: Path) -> np.ndarray:
 
 def _read_npz_recording(path: Path) -> tuple[np.ndarray, np.ndarray, float, int]:
     try:
-        with np.load(path, allow_pickle=False) as z:
+        with path.open("rb") as fh, np.load(fh, allow_pickle=False) as z:
             missing = [k for k in ("t", "acc", "hz") if k not in z.files]
             if missing:
                 raise DataError(f"{path} lacks array(s) {', '.join(missing)} (need t, acc, hz)")

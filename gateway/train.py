@@ -429,7 +429,7 @@ def train_on_windows(
         report["cross_validation"] = cv.to_json() | {"folds": folds, "grouped_by": "animal"}
         report["baseline"] = baseline_json(score(table.y[idx], base, classes), table.y[idx])
         report["sections"].append(
-            ["cross_validation", f"Cross-validation, {folds} folds grouped by animal"]
+            ["cross_validation", f"Cross-validation, {folds} folds grouped by animal", "baseline"]
         )
     if progress:
         progress("fitting the final classifier")
@@ -468,7 +468,9 @@ def train_on_windows(
             "data": held["data"],
         }
         report["holdout_baseline"] = held["baseline"]
-        report["sections"].append(["holdout", "Held-out animals (other recordings)"])
+        report["sections"].append(
+            ["holdout", "Held-out animals (other recordings)", "holdout_baseline"]
+        )
         card["holdout"] = _card_scores(held["evaluation"]) | {
             "recordings": Path(held["recordings"]).name,
             "animals": held["data"]["animals"],
