@@ -174,7 +174,7 @@ class BoutsSettings(_Section):
     # Lying: single readings of <= 1 min are dropped (Bonk et al. 2013, J Dairy Sci, FIELD.md).
     resting_min_s: float = _bout_min(60.0, "Bonk et al. 2013")
     resting_criterion_s: float = _bout_gap(300.0, _CP)
-    walking_min_s: float = _bout_min(10.0, _CP)
+    walking_min_s: float = _bout_min(20.0, _CP)
     walking_criterion_s: float = _bout_gap(30.0, _CP)
     other_min_s: float = _bout_min(60.0, "classes not named above; " + _CP)
     other_criterion_s: float = _bout_gap(120.0, "classes not named above; " + _CP)
