@@ -1,0 +1,184 @@
+"""MQTT ingest: queueing off the network thread, persistent sessions, reconnects, refused
+credentials. The broker tests run against a real Mosquitto (fixtures in conftest.py)."""
+
+from __future__ import annotations
+
+import subprocess
+import time
+from pathlib import Path
+
+import paho.mqtt.client as mqtt
+import pytest
+from paho.mqtt.enums import CallbackAPIVersion
+
+from gateway.config import MqttSettings
+from gateway.errors import BrokerAuthError, ConfigError
+from gateway.ingest import Ingest, collar_filter, validate_filter
+from gateway.servers import start_mosquitto
+from gateway.telemetry import Telemetry
+
+SERVERS = Path(__file__).parent / "servers"
+TOPIC = "barn/test-site/collars/{}/accel"
+
+
+def _settings(srv, **kw) -> MqttSettings:
+    base = {"host": srv.host, "port": srv.port, "reconnect_min_s": 0.2, "reconnect_max_s": 1.0}
+    base.update(kw)
+    return MqttSettings(**base)
+
+
+def _publish(srv, items: list[tuple[str, bytes]], qos: int = 1) -> None:
+    pub = mqtt.Client(CallbackAPIVersion.VERSION2, client_id="", protocol=mqtt.MQTTv311)
+    pub.connect(srv.host, srv.port)
+    pub.loop_start()
+    try:
+        infos = [pub.publish(t, p, qos=qos) for t, p in items]
+        for info in infos:
+            info.wait_for_publish(10)
+    finally:
+        pub.disconnect()
+        pub.loop_stop()
+
+
+def _drain_until(ing: Ingest, n: int, timeout_s: float = 10.0) -> list:
+    got: list = []
+    deadline = time.monotonic() + timeout_s
+    while len(got) < n and time.monotonic() < deadline:
+        got.extend(ing.drain(1000, timeout_s=0.1))
+    return got
+
+
+def test_on_message_only_enqueues_with_receive_time() -> None:
+    ing = Ingest(MqttSettings(), topic_filter=collar_filter("barn", "x"))
+    msg = mqtt.MQTTMessage(topic=b"barn/x/collars/C1/accel")
+    msg.payload = b'{"seq": 1}'
+    before = time.time()
+    ing.on_message(None, None, msg)
+    [(topic, payload, rx)] = ing.drain(timeout_s=0)
+    assert topic == "barn/x/collars/C1/accel" and payload == b'{"seq": 1}'
+    assert before <= rx <= time.time()
+    assert ing.drain(timeout_s=0) == []
+
+
+def test_full_queue_drops_and_counts() -> None:
+    tel = Telemetry()
+    ing = Ingest(MqttSettings(), topic_filter="barn/+/collars/+/accel", queue_max=3, telemetry=tel)
+    ing.put_timeout_s = 0.01
+    msg = mqtt.MQTTMessage(topic=b"barn/x/collars/C1/accel")
+    for _ in range(5):
+        ing.on_message(None, None, msg)
+    assert len(ing.drain(timeout_s=0)) == 3
+    assert tel.value("boutline_queue_dropped_total") == 2.0
+
+
+@pytest.mark.parametrize("bad", ["", "barn//x", "barn/#/x", "barn/x y", "barn/+x/a", "a" * 70000])
+def test_malformed_topic_filters_are_refused_at_start(bad: str) -> None:
+    with pytest.raises(ConfigError, match="topic filter"):
+        validate_filter(bad)
+    assert validate_filter("barn/+/collars/+/accel") and validate_filter("#")
+
+
+@pytest.mark.integration
+@pytest.mark.parametrize("protocol", ["5", "3.1.1"])
+def test_receives_qos1_frames_from_a_real_broker(mosquitto, protocol: str) -> None:
+    ing = Ingest(
+        _settings(mosquitto, protocol=protocol),
+        topic_filter="barn/test-site/collars/+/accel",
+        client_id=f"recv-{protocol}",
+    )
+    ing.start()
+    try:
+        assert ing.wait_connected(10)
+        _publish(mosquitto, [(TOPIC.format(f"C{i}"), b"x%d" % i) for i in range(20)])
+        got = _drain_until(ing, 20)
+        assert sorted(p for _, p, _ in got) == sorted(b"x%d" % i for i in range(20))
+        assert {t for t, _, _ in got} == {TOPIC.format(f"C{i}") for i in range(20)}
+    finally:
+        ing.stop()
+
+
+@pytest.mark.integration
+@pytest.mark.parametrize("protocol", ["5", "3.1.1"])
+def test_persistent_session_delivers_frames_queued_while_away(mosquitto, protocol: str) -> None:
+    settings = _settings(
+        mosquitto, protocol=protocol, client_id=f"persist-{protocol.replace('.', '')}"
+    )
+    topic_filter = "barn/test-site/collars/+/accel"
+    first = Ingest(settings, topic_filter=topic_filter)
+    first.start()
+    assert first.wait_connected(10)
+    first.stop()  # the gateway goes away; its session stays on the broker
+    _publish(mosquitto, [(TOPIC.format("C7"), b"away-%d" % i) for i in range(50)])
+    second = Ingest(settings, topic_filter=topic_filter)
+    second.start()
+    try:
+        got = _drain_until(second, 50)
+        assert [p for _, p, _ in got] == [b"away-%d" % i for i in range(50)]
+    finally:
+        second.stop()
+
+
+@pytest.mark.integration
+def test_reconnects_after_the_broker_restarts(mosquitto_private) -> None:
+    tel = Telemetry()
+    ing = Ingest(
+        _settings(mosquitto_private, client_id="reconnect"),
+        topic_filter="barn/test-site/collars/+/accel",
+        telemetry=tel,
+    )
+    ing.start()
+    try:
+        assert ing.wait_connected(10)
+        mosquitto_private.restart()
+        deadline = time.monotonic() + 15
+        while ing.connects < 2 and time.monotonic() < deadline:
+            time.sleep(0.05)
+        assert ing.connects == 2 and ing.wait_connected(5)
+        _publish(mosquitto_private, [(TOPIC.format("C1"), b"after")])
+        assert [p for _, p, _ in _drain_until(ing, 1)] == [b"after"]
+        assert tel.value("boutline_broker_reconnects_total") == 2.0
+    finally:
+        ing.stop()
+
+
+@pytest.fixture
+def auth_broker(tmp_path: Path):
+    work = tmp_path / "auth"
+    work.mkdir()
+    subprocess.run(
+        ["mosquitto_passwd", "-b", "-c", str(work / "passwd"), "gateway", "right-password"],
+        check=True,
+        capture_output=True,
+    )
+    (work / "passwd").chmod(0o600)
+    srv = start_mosquitto(work, SERVERS / "mosquitto-auth.conf")
+    yield srv
+    srv.stop()
+
+
+@pytest.mark.integration
+@pytest.mark.parametrize("protocol", ["5", "3.1.1"])
+def test_refused_credentials_stop_with_a_clear_error(auth_broker, protocol: str) -> None:
+    ing = Ingest(
+        _settings(auth_broker, protocol=protocol, username="gateway", password="wrong"),
+        topic_filter="barn/+/collars/+/accel",
+    )
+    ing.start()
+    try:
+        with pytest.raises(BrokerAuthError, match="refused the connection .*mqtt.username"):
+            ing.wait_connected(10)
+        time.sleep(1.5)  # longer than the reconnect backoff: no further attempt is made
+        assert ing.connects == 0
+        with pytest.raises(BrokerAuthError):
+            ing.check()
+    finally:
+        ing.stop()
+    ok = Ingest(
+        _settings(auth_broker, protocol=protocol, username="gateway", password="right-password"),
+        topic_filter="barn/+/collars/+/accel",
+    )
+    ok.start()
+    try:
+        assert ok.wait_connected(10)
+    finally:
+        ok.stop()
