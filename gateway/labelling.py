@@ -1,9 +1,9 @@
 """Cut labelled windows from recordings: the one windowing rule training and evaluation share.
 
-Each collar's samples are put on a regular grid at the model's rate, starting at the
-collar's first sample (linear interpolation; a box filter first when the recording is
-faster than the model, against aliasing). Windows are ``window_len`` samples every
-``hop_len`` samples. A window is kept when:
+Each collar's samples are put on the absolute grid ``k / rate`` by linear interpolation and
+cut into windows of ``window_len`` samples starting on multiples of ``hop_len``: the same
+grid, interpolation and gap rule as the gateway's ring buffers (gateway.windows), so a model
+is trained on windows like those it will see. A window is kept when:
 
 - every grid sample lies between two real samples no more than 1.5 sample periods apart
   (otherwise: ``gap in recording``);
@@ -54,43 +54,27 @@ class LabelledWindows:
         return int(self.y.size)
 
 
-def _box_filter(t: np.ndarray, acc: np.ndarray, n: int, gap_s: float) -> np.ndarray:
-    """Centred moving average over n samples (odd), never across a gap; near a gap or an
-    end the span shrinks symmetrically, so the filter never shifts time."""
-    h = n // 2
-    if h < 1:
-        return acc
-    i = np.arange(t.size)
-    seg = np.concatenate([[0], np.cumsum(np.diff(t) > gap_s)])
-    first = np.searchsorted(seg, seg, side="left")
-    last = np.searchsorted(seg, seg, side="right") - 1
-    hw = np.minimum(h, np.minimum(i - first, last - i))
-    cum = np.concatenate([np.zeros((1, 3)), np.cumsum(acc, axis=0)])
-    return (cum[i + hw + 1] - cum[i - hw]) / (2 * hw + 1)[:, None]
-
-
 def grid_samples(rec: Recording, rate_hz: float) -> tuple[float, np.ndarray, np.ndarray]:
-    """Put a recording on a regular grid at ``rate_hz`` from its first sample.
+    """Put a recording on the absolute grid ``k / rate_hz`` (unix seconds), as the gateway's
+    ring buffers do, by linear interpolation.
 
-    Returns ``(t0, acc [m, 3] float32, valid [m] bool)``; a grid point is invalid when it
-    falls into a gap between real samples.
+    Returns ``(k0, acc [m, 3] float32, valid [m] bool)``: grid index of the first point, the
+    samples, and False where a grid point falls into a gap between real samples.
     """
     t = rec.t
-    t0 = float(t[0])
-    m = int(np.floor((t[-1] - t0) * rate_hz + 1e-6)) + 1
-    grid = t0 + np.arange(m) / rate_hz
+    k0 = int(np.ceil(t[0] * rate_hz - 1e-6))
+    m = max(0, int(np.floor(t[-1] * rate_hz + 1e-6)) - k0 + 1)
+    grid = (k0 + np.arange(m)) / rate_hz
     period = 1.0 / rec.hz
     j = np.clip(np.searchsorted(t, grid, side="right") - 1, 0, t.size - 1)
     nxt = np.minimum(j + 1, t.size - 1)
     exact = np.abs(grid - t[j]) <= 1e-6 * period
     valid = exact | ((t[nxt] - t[j] <= GAP_FACTOR * period) & (nxt > j))
     acc = rec.acc.astype(np.float64)
-    if rec.hz > rate_hz * 1.01:
-        acc = _box_filter(t, acc, int(round(rec.hz / rate_hz)), GAP_FACTOR * period)
     out = np.empty((m, 3), dtype=np.float32)
     for i in range(3):
         out[:, i] = np.interp(grid, t, acc[:, i])
-    return t0, out, valid
+    return k0, out, valid
 
 
 def interval_coverage(
@@ -212,24 +196,27 @@ def iter_labelled_windows(
             continue
         rec = recordings.read(collar)
         counts["bad sample rows (NaN or out of range)"] += rec.bad_rows
-        t0, acc, valid = grid_samples(rec, rate_hz)
-        n_win = (acc.shape[0] - window_len) // hop_len + 1 if acc.shape[0] >= window_len else 0
+        k0, acc, valid = grid_samples(rec, rate_hz)
+        # Windows start on multiples of the hop on the absolute grid (as in the gateway).
+        first = -k0 % hop_len
+        n_win = (acc.shape[0] - first - window_len) // hop_len + 1
         if n_win <= 0:
             counts["recording shorter than a window"] += 1
             continue
-        k = np.arange(n_win)
-        starts = t0 + k * hop_len / rate_hz
+        offs = first + np.arange(n_win) * hop_len  # window start, index into acc
+        k = (k0 + offs) // hop_len  # absolute hop number: consecutive hops differ by one
+        starts = (k0 + offs) / rate_hz
         # Invalid samples per window via a running count: a window with any is a gap.
         bad_cum = np.concatenate([[0], np.cumsum(~valid)])
-        gap = bad_cum[k * hop_len + window_len] - bad_cum[k * hop_len] > 0
+        gap = bad_cum[offs + window_len] - bad_cum[offs] > 0
         # Each dropped window is counted once: a gap first, else its labelling reason.
         counts["gap in recording"] += int(gap.sum())
-        idx = k[~gap]
+        idx = np.flatnonzero(~gap)
         y, animal = label_windows(obs, starts[idx], window_s, classes, min_share, counts)
         keep = y >= 0
         idx, y, animal = idx[keep], y[keep], animal[keep]
         if idx.size == 0:
             continue
-        cols = idx[:, None] * hop_len + np.arange(window_len)[None, :]
+        cols = offs[idx, None] + np.arange(window_len)[None, :]
         x = np.ascontiguousarray(acc[cols].transpose(0, 2, 1))
-        yield LabelledWindows(collar, x, y, animal, starts[idx], idx)
+        yield LabelledWindows(collar, x, y, animal, starts[idx], k[idx])

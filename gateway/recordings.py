@@ -393,6 +393,11 @@ def open_recordings(path: str | Path) -> RecordingSet:
         except (OSError, ValueError) as exc:
             raise DataError(f"{herd} is not readable JSON: {exc}") from exc
         if isinstance(loaded, dict):
-            meta = {k: loaded[k] for k in ("seed", "scenario", "hz", "days", "herd") if k in loaded}
+            params = loaded.get("parameters")
+            params = params if isinstance(params, dict) else {}
+            meta = {k: loaded[k] for k in ("scenario", "seed") if k in loaded}
+            meta |= {
+                k: params[k] for k in ("n_animals", "days", "hz", "random_roll") if k in params
+            }
         meta["synthetic"] = True  # herd.json is the simulator's mark
     return RecordingSet(root, files, usable, assignments, counts, meta)
