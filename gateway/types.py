@@ -18,6 +18,7 @@ __all__ = [
     "BEHAVIOURS",
     "Behaviour",
     "BoutClosed",
+    "CollarGravity",
     "Decision",
     "Frame",
     "NO_DATA",
@@ -154,3 +155,19 @@ class BoutClosed:
     @property
     def duration_s(self) -> float:
         return self.end - self.start
+
+
+@dataclass(slots=True)
+class CollarGravity:
+    """Mean static acceleration (gravity as the collar sees it) of one collar over one window.
+
+    The pipeline hands these to the collar-health tracker, which watches the collar's roll
+    about the neck (roll = atan2(gy, gz), NXP AN3461) for a lasting change: a collar that
+    slipped or turned. ``t`` is the window start (collar clock, as ``Posteriors.t_start``).
+    """
+
+    collar_id: str
+    animal: str
+    t: float
+    duration_s: float
+    g: tuple[float, float, float]  # mean acceleration over the window in g, collar axes x, y, z
