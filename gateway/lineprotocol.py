@@ -234,12 +234,17 @@ class Measurement:
         return p
 
 
-def _behaviour_fields() -> dict[str, FieldSpec]:
-    specs = {
-        f"{b}_min": FieldSpec("float", f"minutes of {b} in the day", "min") for b in BEHAVIOURS
-    }
-    specs[f"{NO_DATA}_min"] = FieldSpec("float", "minutes not classified (collar silent)", "min")
-    specs["coverage"] = FieldSpec("float", "share of the day that was classified, 0..1")
+def _budget_fields() -> dict[str, FieldSpec]:
+    specs: dict[str, FieldSpec] = {}
+    for b in BEHAVIOURS:
+        specs[f"{b}_min"] = FieldSpec("float", f"minutes of {b} in the day", "min")
+        specs[f"{b}_bouts"] = FieldSpec("int", f"{b} bouts starting in the day")
+        specs[f"{b}_mean_bout_min"] = FieldSpec(
+            "float", f"mean length of those {b} bouts", "min", required=False
+        )
+    specs[f"{NO_DATA}_min"] = FieldSpec("float", "minutes known unclassified", "min")
+    specs["coverage"] = FieldSpec("float", "classified share of the day, 0..1")
+    specs["final"] = FieldSpec("bool", "the day is over and complete; false: provisional")
     return specs
 
 
@@ -279,9 +284,12 @@ SCHEMA: dict[str, Measurement] = {
         Measurement(
             name="daily_budget",
             kind="daily_budget",
-            doc="Minutes per behaviour in one local day of one animal.",
+            doc=(
+                "One animal's time budget for one local day. Provisional budgets are sent"
+                " during the day and overwrite each other (same key); the final one last."
+            ),
             tags={"site": _SITE, "animal": "animal id"},
-            fields=_behaviour_fields(),
+            fields=_budget_fields(),
             time="start of the local day (site.timezone, site.day_start_hour)",
         ),
         Measurement(
@@ -347,17 +355,23 @@ SCHEMA: dict[str, Measurement] = {
 
 Converter = Callable[[Mapping[str, Any], str], list[Point]]
 _CONVERTERS: dict[str, Converter] = {}
+_DEFAULTS: set[str] = set()  # kinds whose converter is this module's default
 
 
-def register_converter(kind: str, fn: Converter, *, replace: bool = False) -> Converter:
+def register_converter(
+    kind: str, fn: Converter, *, replace: bool = False, default: bool = False
+) -> Converter:
     """Register ``fn(fact, site) -> [Point]`` for facts of ``kind``; returns ``fn``.
 
-    Other modules add their own kinds this way (budgets, alerts, collar health). Points must
-    match a measurement in :data:`SCHEMA`; :func:`points_for` checks them.
+    Other modules add their own kinds this way, or replace a default of this module (the
+    defaults read facts whose attributes carry the schema's names). Points must match a
+    measurement in :data:`SCHEMA`; :func:`points_for` checks them.
     """
-    if kind in _CONVERTERS and not replace and _CONVERTERS[kind] is not fn:
+    taken = kind in _CONVERTERS and kind not in _DEFAULTS and _CONVERTERS[kind] is not fn
+    if taken and not replace:
         raise ValueError(f"a converter for {kind!r} is already registered; pass replace=True")
     _CONVERTERS[kind] = fn
+    (_DEFAULTS.add if default else _DEFAULTS.discard)(kind)
     return fn
 
 
@@ -414,10 +428,32 @@ def _state(fact: Mapping[str, Any], site: str) -> list[Point]:
     return [SCHEMA["animal_state"].point(fact["since"], tags, fields)]
 
 
-register_converter("bout_closed", _bout)
-register_converter("state_changed", _state)
-register_converter("gateway_stats", simple_converter("gateway_stats", "t"))
-register_converter("gateway_alert", simple_converter("gateway_alert", "t", ("cause",)))
+def _budget(fact: Mapping[str, Any], site: str) -> list[Point]:
+    """A ``DailyBudget`` fact (gateway/budgets.py): per-behaviour dicts become fields."""
+    minutes, bouts = fact["minutes"], fact.get("bouts", {})
+    mean = fact.get("mean_bout_min", {})
+    length = (float(fact["end"]) - float(fact["start"])) / 60.0
+    fields: dict[str, Any] = {f"{NO_DATA}_min": fact["no_data_min"], "final": fact["final"]}
+    for b in BEHAVIOURS:
+        fields[f"{b}_min"] = minutes.get(b, 0.0)
+        fields[f"{b}_bouts"] = bouts.get(b, 0)
+        fields[f"{b}_mean_bout_min"] = mean.get(b)
+    classified = sum(float(minutes.get(b, 0.0)) for b in BEHAVIOURS)
+    fields["coverage"] = min(classified / length, 1.0) if length > 0 else 0.0
+    tags = {"site": site, "animal": fact["animal"]}
+    return [SCHEMA["daily_budget"].point(fact["start"], tags, fields)]
+
+
+for _kind, _fn in {
+    "bout_closed": _bout,
+    "state_changed": _state,
+    "daily_budget": _budget,
+    "alert": simple_converter("alert", "t", ("animal", "rule")),
+    "collar_health": simple_converter("collar_health", "t", ("collar", "animal")),
+    "gateway_stats": simple_converter("gateway_stats", "t"),
+    "gateway_alert": simple_converter("gateway_alert", "t", ("cause",)),
+}.items():
+    register_converter(_kind, _fn, default=True)
 
 
 # --------------------------------------------------------------------------- docs
