@@ -1,0 +1,271 @@
+"""The pipeline loop: ingest -> decode -> registry -> windows -> inference -> tracker -> store.
+
+One thread does all the work after the network thread has queued a message (DESIGN.md, data
+flow, one direction):
+
+    Ingest.drain()  ->  Gateway.handle(messages)      decode, registry, ring buffers
+    every tick      ->  Gateway.tick()                ready windows -> one model call ->
+                                                      smoothing and bouts -> listeners/store
+
+``handle`` is the message handler: tests push ``(topic, payload, receive time)`` straight
+into it without a broker, and the same handler runs behind a real broker in ``run``.
+Nothing a collar sends raises out of ``handle``: every problem is a Rejection, counted per
+reason and logged at most once a minute per reason with the collar id and a truncated payload.
+"""
+
+from __future__ import annotations
+
+import logging
+import threading
+import time
+from collections import Counter
+from collections.abc import Callable, Iterable
+from dataclasses import dataclass, field
+from typing import Any
+
+from .bouts import Event, HerdTracker
+from .config import Settings
+from .infer import Inference
+from .ingest import Ingest, Message, collar_filter
+from .model import Model
+from .registry import Registry, load_assignments
+from .telemetry import RateLimitedLog, Telemetry
+from .types import Decision, NoDataHop, Posteriors
+from .windows import Windows
+from .wire import Limits, Reason, Rejection, decode, parse_topic
+
+__all__ = ["Gateway", "TickResult"]
+
+log = logging.getLogger("boutline.gateway")
+
+_DRAIN_MAX = 5000  # messages handled between two looks at the clock
+_SILENCE_EVERY_S = 1.0  # how often silent animals are looked for (a pass over all streams)
+
+
+@dataclass(slots=True)
+class TickResult:
+    """What one tick produced, handed to every listener (store, outputs, the demo table)."""
+
+    now: float
+    events: list[Event] = field(default_factory=list)
+    decisions: list[Decision] = field(default_factory=list)
+    windows: int = 0
+    no_data: int = 0
+
+
+Listener = Callable[[TickResult], None]
+
+
+class Gateway:
+    """The daemon's state: registry, ring buffers, model, tracker; no network of its own."""
+
+    def __init__(
+        self,
+        settings: Settings,
+        *,
+        model: Model | None = None,
+        telemetry: Telemetry | None = None,
+        speed: float | None = 1.0,
+        listeners: Iterable[Listener] = (),
+    ) -> None:
+        self.settings = settings
+        self.telemetry = telemetry or Telemetry()
+        tel = self.telemetry
+        if model is None:
+            self.inference = Inference.open(
+                settings.model.path or None,
+                batch_max=settings.model.batch_max,
+                watch=settings.model.watch,
+                telemetry=tel,
+            )
+        else:
+            self.inference = Inference(
+                model,
+                batch_max=settings.model.batch_max,
+                watch=settings.model.watch,
+                telemetry=tel,
+            )
+        self.inference.on_reload = self._model_reloaded
+        m = self.inference.model
+        assignments = (
+            load_assignments(settings.site.assignments) if settings.site.assignments else []
+        )
+        self.registry = Registry(
+            assignments,
+            unknown_collars=settings.site.unknown_collars,
+            max_collars=settings.limits.max_collars,
+        )
+        self.windows = Windows.for_model(
+            m, settings.windows, settings.limits, speed=speed, telemetry=tel
+        )
+        self.tracker = HerdTracker.from_model(m, settings.smoothing, settings.bouts)
+        self.limits = Limits(
+            max_payload_bytes=settings.limits.max_payload_bytes,
+            max_samples=settings.limits.max_samples,
+        )
+        self.prefix = settings.mqtt.topic_prefix
+        self.site = settings.site.id
+        self.listeners: list[Listener] = list(listeners)
+        self._bad_log = RateLimitedLog(log, settings.limits.log_every_s)
+        self._next_silence = 0.0
+        self.rejects: Counter[str] = Counter()
+
+    @property
+    def model(self) -> Model:
+        return self.inference.model
+
+    @property
+    def topic_filter(self) -> str:
+        return collar_filter(self.prefix, self.site)
+
+    def _model_reloaded(self, new: Model) -> None:
+        # Same classes, rate, window and hop (checked by Inference); the transition matrix may
+        # have changed, so every smoother moves to the new chain parameters.
+        params = HerdTracker.from_model(new, self.settings.smoothing, self.settings.bouts).params
+        self.tracker.params = params
+        for sm in self.tracker.smoothers.values():
+            sm.params = params
+
+    # ------------------------------------------------------------------ frames in
+
+    def handle(self, messages: Iterable[Message]) -> int:
+        """Decode and buffer raw messages; returns how many frames were accepted."""
+        prefix, site, limits = self.prefix, self.site, self.limits
+        windows, registry = self.windows, self.registry
+        future, past = self.settings.windows.clock_future_s, self.settings.windows.clock_past_s
+        rejects: Counter[str] = Counter()
+        accepted = samples = received = 0
+        for topic, payload, rx in messages:
+            received += 1
+            parsed = parse_topic(topic, prefix)
+            if isinstance(parsed, Rejection):
+                self._rejected(parsed, payload, rejects)
+                continue
+            topic_site, collar = parsed
+            if topic_site != site:
+                self._rejected(
+                    Rejection(Reason.BAD_TOPIC, f"site {topic_site!r} is not {site!r}", collar),
+                    payload,
+                    rejects,
+                )
+                continue
+            frame = decode(payload, collar, limits)
+            if isinstance(frame, Rejection):
+                self._rejected(frame, payload, rejects)
+                continue
+            frame.received_at = rx
+            # The collar's time decides which assignment applies, unless its clock is wrong.
+            t = frame.t if rx - past <= frame.t <= rx + future else rx
+            animal = registry.resolve(collar, t)
+            if isinstance(animal, Rejection):
+                self._rejected(animal, payload, rejects)
+                continue
+            r = windows.push(frame, animal)
+            if r is not None:
+                self._rejected(r, payload, rejects)
+                continue
+            accepted += 1
+            samples += frame.n
+        tel = self.telemetry
+        tel.messages_in.inc(received)
+        tel.frames_in.inc(accepted)
+        tel.samples_in.inc(samples)
+        for reason, n in rejects.items():
+            tel.reject(reason, n)
+            self.rejects[reason] += n
+        if rejects.get(Reason.COLLAR_CAP):
+            tel.collar_overflow.inc(rejects[Reason.COLLAR_CAP])
+        tel.collars.set(registry.tracked)
+        return accepted
+
+    def _rejected(self, r: Rejection, payload: bytes, counts: Counter[str]) -> None:
+        counts[r.reason] += 1
+        self._bad_log.warning(
+            str(r.reason),
+            "rejected frame from collar %r (%s): %s; payload %r",
+            r.collar_id or "?",
+            r.reason,
+            r.detail,
+            bytes(payload[:80]),
+        )
+
+    # ------------------------------------------------------------------ windows out
+
+    def tick(self, now: float | None = None) -> TickResult:
+        """Classify every ready window in one call, smooth, segment, hand out the result."""
+        now = time.time() if now is None else now
+        self.inference.maybe_reload()
+        if now >= self._next_silence:
+            self._next_silence = now + _SILENCE_EVERY_S
+            self.windows.flush_silent(now)
+        ready = self.windows.collect()
+        posts = self.inference.classify(ready.batch)
+        if posts:
+            self.telemetry.window_latency.set(max(0.0, now - max(p.ready_at for p in posts)))
+        items: list[Posteriors | NoDataHop] = [*posts, *ready.no_data]
+        items.sort(key=lambda i: (i.animal, i.t_start if isinstance(i, Posteriors) else i.t))
+        result = TickResult(now, windows=len(posts), no_data=len(ready.no_data))
+        result.events = self.tracker.push_many(items, result.decisions)
+        self._publish(result)
+        return result
+
+    def close(self, now: float | None = None) -> TickResult:
+        """Last tick, then decide every pending hop (clean shutdown)."""
+        result = self.tick(now)
+        more = TickResult(result.now)
+        more.events = self.tracker.flush(more.decisions)
+        self._publish(more)
+        result.events += more.events
+        result.decisions += more.decisions
+        return result
+
+    def _publish(self, result: TickResult) -> None:
+        if not (result.events or result.decisions):
+            return
+        kinds = Counter(e.kind for e in result.events)
+        for kind, n in kinds.items():
+            self.telemetry.event(kind, n)
+        for listener in self.listeners:
+            listener(result)
+
+    # ------------------------------------------------------------------ the loop
+
+    def run(
+        self,
+        stop: threading.Event,
+        *,
+        ingest: Ingest | None = None,
+        tick_s: float = 0.5,
+        on_tick: Callable[[TickResult], None] | None = None,
+    ) -> Ingest:
+        """Subscribe and work until ``stop`` is set; raises BrokerAuthError if refused."""
+        ingest = ingest or Ingest(
+            self.settings.mqtt, topic_filter=self.topic_filter, telemetry=self.telemetry
+        )
+        ingest.start()
+        next_tick = time.monotonic() + tick_s
+        try:
+            while not stop.is_set():
+                ingest.check()
+                wait = max(0.0, min(0.05, next_tick - time.monotonic()))
+                msgs = ingest.drain(_DRAIN_MAX, timeout_s=wait)
+                if msgs:
+                    self.handle(msgs)
+                if time.monotonic() >= next_tick:
+                    next_tick = time.monotonic() + tick_s
+                    r = self.tick()
+                    if on_tick is not None:
+                        on_tick(r)
+        finally:
+            ingest.stop()
+            # what the network thread had queued before it stopped is still ours to keep
+            while msgs := ingest.drain(_DRAIN_MAX, timeout_s=0):
+                self.handle(msgs)
+        return ingest
+
+    def status(self) -> dict[str, Any]:
+        """Plain figures for a status line or summary."""
+        snap = self.telemetry.snapshot()
+        snap["animals"] = len(self.windows.animals)
+        snap["model"] = self.model.source
+        return snap
