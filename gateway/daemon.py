@@ -25,10 +25,12 @@ from typing import Any
 
 from .bouts import Event, HerdTracker
 from .config import Settings
+from .errors import StoreError
 from .infer import Inference
 from .ingest import Ingest, Message, collar_filter
 from .model import Model
 from .registry import Registry, load_assignments
+from .store import Store
 from .telemetry import RateLimitedLog, Telemetry
 from .types import Decision, NoDataHop, Posteriors
 from .windows import Windows
@@ -67,6 +69,7 @@ class Gateway:
         telemetry: Telemetry | None = None,
         speed: float | None = 1.0,
         listeners: Iterable[Listener] = (),
+        store: Store | None = None,
     ) -> None:
         self.settings = settings
         self.telemetry = telemetry or Telemetry()
@@ -109,6 +112,32 @@ class Gateway:
         self._bad_log = RateLimitedLog(log, settings.limits.log_every_s)
         self._next_silence = 0.0
         self.rejects: Counter[str] = Counter()
+        self.store = store
+        self._unstored: list[Event] = []
+        self._touched: set[str] = set()
+        self._next_commit = 0.0
+        self._store_log = RateLimitedLog(log, 60.0)
+        if store is not None:
+            self._attach_store(store, assignments)
+
+    def _attach_store(self, store: Store, assignments: list[Any]) -> None:
+        """Resume open bouts and states from the store; record the assignments in it."""
+        states = store.load_states()
+        bad = self.tracker.restore(states)
+        if states:
+            log.info("resumed the state of %d animals from %s", len(states) - len(bad), store.path)
+        if bad:
+            log.warning("could not resume %d animals (they start afresh): %s", len(bad), bad[:5])
+        if assignments:
+            store.replace_assignments(
+                (
+                    a.collar,
+                    a.animal,
+                    a.valid_from,
+                    None if a.valid_to == float("inf") else a.valid_to,
+                )
+                for a in assignments
+            )
 
     @property
     def model(self) -> Model:
@@ -209,17 +238,36 @@ class Gateway:
         self._publish(result)
         return result
 
-    def close(self, now: float | None = None) -> TickResult:
-        """Last tick, then decide every pending hop (clean shutdown)."""
+    def close(
+        self, now: float | None = None, *, flush: bool = True, final: bool = False
+    ) -> TickResult:
+        """Last tick; then decide pending hops (``flush``) and close open bouts (``final``).
+
+        A daemon's clean shutdown uses ``flush=False``: the smoothers' pending hops go into
+        the store's full snapshot and are decided after the restart with their full lag.
+        ``final`` ends a demo or a replay: every open bout is closed and stored.
+        """
         result = self.tick(now)
-        more = TickResult(result.now)
-        more.events = self.tracker.flush(more.decisions)
-        self._publish(more)
-        result.events += more.events
-        result.decisions += more.decisions
+        if flush or final:
+            more = TickResult(result.now)
+            more.events = self.tracker.flush(more.decisions)
+            if final:
+                for seg in self.tracker.segmenters.values():
+                    more.events.extend(seg.close())
+            self._publish(more)
+            result.events += more.events
+            result.decisions += more.decisions
+        if self.store is not None:
+            self._commit(full=True)
         return result
 
     def _publish(self, result: TickResult) -> None:
+        if self.store is not None:
+            self._unstored.extend(result.events)
+            self._touched.update(d.animal for d in result.decisions)
+            if result.now >= self._next_commit:
+                self._commit()
+                self._next_commit = result.now + self.settings.store.commit_interval_s
         if not (result.events or result.decisions):
             return
         kinds = Counter(e.kind for e in result.events)
@@ -227,6 +275,18 @@ class Gateway:
             self.telemetry.event(kind, n)
         for listener in self.listeners:
             listener(result)
+
+    def _commit(self, *, full: bool = False) -> None:
+        """Events since the last commit plus the touched animals' snapshots, one transaction."""
+        assert self.store is not None
+        if not (self._unstored or self._touched or full):
+            return
+        states = self.tracker.snapshot(None if full else self._touched, full=full)
+        events, self._unstored, self._touched = self._unstored, [], set()
+        try:
+            self.store.write_events(events, states)
+        except StoreError as exc:  # the store keeps the batch and retries with the next one
+            self._store_log.warning("store", "store write failed, retrying with the next: %s", exc)
 
     # ------------------------------------------------------------------ the loop
 

@@ -289,3 +289,31 @@ def test_end_to_end_through_a_real_broker(tmp_path: Path, mosquitto) -> None:
     d = [(x.t - t0, x.behaviour) for r in results for x in r.decisions]
     assert len(d) >= 50
     assert all(b == ("ruminating" if t < 150 else "resting") for t, b in d)
+
+
+def test_store_gets_bouts_and_a_restart_resumes_the_open_bout(tmp_path: Path) -> None:
+    from gateway.store import Store
+
+    cfg = settings(tmp_path)
+    frames = script("C1", [("resting", 600), ("walking", 300)])
+
+    def feed(gw: Gateway, part: list[Frame]) -> None:
+        for k in range(0, len(part), 10):
+            gw.handle(msg(f) for f in part[k : k + 10])
+            gw.tick(now=part[min(k + 9, len(part) - 1)].t_end)
+
+    with Store.open(tmp_path / "data") as store:
+        first = Gateway(cfg, store=store)
+        feed(first, frames[:300])
+        first.close(now=frames[299].t_end, flush=False)  # daemon shutdown mid-bout
+        assert store.bouts("C1") == []  # the resting bout is still open
+    with Store.open(tmp_path / "data") as store:
+        second = Gateway(cfg, store=store)
+        assert second.tracker.current()["C1"].behaviour == "resting"
+        feed(second, frames[300:])
+        second.close(now=frames[-1].t_end, final=True)
+        bouts = [(b.behaviour, b.start - T0, b.end - T0) for b in store.bouts("C1")]
+    # one resting bout across the restart, not two; then the walking bout
+    assert [b for b, _, _ in bouts] == ["resting", "walking"]
+    assert bouts[0][1] == pytest.approx(2.5, abs=5.0) and bouts[0][2] == pytest.approx(600, abs=5.0)
+    assert bouts[1][2] == pytest.approx(900, abs=10.0)
