@@ -444,16 +444,16 @@ def _budget(fact: Mapping[str, Any], site: str) -> list[Point]:
     return [SCHEMA["daily_budget"].point(fact["start"], tags, fields)]
 
 
-for _kind, _fn in {
-    "bout_closed": _bout,
-    "state_changed": _state,
-    "daily_budget": _budget,
-    "alert": simple_converter("alert", "t", ("animal", "rule")),
-    "collar_health": simple_converter("collar_health", "t", ("collar", "animal")),
-    "gateway_stats": simple_converter("gateway_stats", "t"),
-    "gateway_alert": simple_converter("gateway_alert", "t", ("cause",)),
-}.items():
-    register_converter(_kind, _fn, default=True)
+register_converter("bout_closed", _bout)
+register_converter("state_changed", _state)
+register_converter("gateway_stats", simple_converter("gateway_stats", "t"))
+register_converter("gateway_alert", simple_converter("gateway_alert", "t", ("cause",)))
+# Defaults for the analytics' facts; their modules may register converters of their own.
+register_converter("daily_budget", _budget, default=True)
+register_converter("alert", simple_converter("alert", "t", ("animal", "rule")), default=True)
+register_converter(
+    "collar_health", simple_converter("collar_health", "t", ("collar", "animal")), default=True
+)
 
 
 # --------------------------------------------------------------------------- docs
