@@ -16,7 +16,8 @@ Ground truth sits beside it: :meth:`Herd.observations` (behaviour intervals per 
 
 Generation is vectorised across collars and samples, in blocks of true time. With
 ``shard=(k, p)`` a herd makes only the collars ``i % p == k``: every animal's signal is the
-same in any shard (see simulator.rand), which is how several processes share a large herd.
+same in any shard (see simulator.rand), which is how several processes share a large herd;
+``collars=[...]`` picks an explicit subset the same way.
 """
 
 from __future__ import annotations
@@ -106,11 +107,16 @@ class Herd:
         calving_share: float = 0.0,
         days: float | None = None,
         shard: tuple[int, int] = (0, 1),
+        collars: list[int] | None = None,
     ) -> None:
         problems = _check(
             n_animals, scenario, seed, hz, start, frame_s, range_g, loss, silence_per_day,
             illness_share, estrus_share, calving_share, days, shard,
         )  # fmt: skip
+        if collars is not None and (
+            not len(collars) or min(collars) < 0 or max(collars) >= n_animals
+        ):
+            problems.append(f"collar indices must lie in 0..{n_animals - 1}.")
         if problems:
             raise ConfigError(problems[0], problems)
         self.n_animals = int(n_animals)
@@ -142,7 +148,11 @@ class Herd:
         self.scenario_of = [names[j] for j in per_animal]
         self._scenarios = [SCENARIOS[x] for x in names]
         k, p = self.shard
-        self.local = np.arange(k, self.n_animals, p)
+        self.local = (
+            np.arange(k, self.n_animals, p)
+            if collars is None
+            else np.unique(np.asarray(collars, dtype=np.int64))
+        )
         self.events = health.draw_events(
             seed=self.seed,
             animal_ids=self.animal_ids,
@@ -355,7 +365,7 @@ class Herd:
         has_prev = found & (idx > 0) & (sch.animal[prev_i] == animal)
         prev = np.where(has_prev, sch.state[prev_i], state)
         a = neck_acceleration(
-            self._sig, rs, t_true, state, prev, b0, sch.bout_u[idx], sch.bout_z[idx], roll
+            self._sig, rs, t_true, state, prev, b0, idx, sch.bout_u, sch.bout_z, roll
         )
         a += bias
         # motion noise of the behaviour and the sensor's own white noise, in one draw

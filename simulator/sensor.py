@@ -124,7 +124,7 @@ def draw_collar_traits(seed: int, collars: np.ndarray, sensor: SensorModel, fram
         roll0=roll0,
         roll_f=1.0 / (3600.0 * (2.0 + 6.0 * u[:, 1])),
         roll_p=2 * np.pi * u[:, 2],
-        noise_g=0.004 + 0.008 * u[:, 3],
+        noise_g=0.004 + 0.011 * u[:, 3],
         bias_g=0.015 * z[:, 0:3],
         bias_p=2 * np.pi * u[:, 4:7],
         clock_off_s=u[:, 7] - 0.5,

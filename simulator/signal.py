@@ -71,14 +71,14 @@ def draw_signal_traits(seed: int, animals: np.ndarray) -> SignalTraits:
     kc = k[:, None]
     z = rand.normal(kc, np.arange(16)[None, :])
     u = rand.uniform(kc, np.arange(100, 116)[None, :])
-    pitch = _PITCH_DEG[None, :] + 4.0 * z[:, :1] + 3.0 * z[:, 1:8]
+    pitch = _PITCH_DEG[None, :] + 6.0 * z[:, :1] + 4.0 * z[:, 1:8]
     return SignalTraits(
         key=k,
         pitch=pitch,
         # ~1.1-1.2 Hz rumination chewing, ~1.07 Hz eating (FIELD.md, derived from Braun 2015)
         chew_hz=np.clip(1.15 + 0.025 * z[:, 8], 1.09, 1.21),
         eat_hz=np.clip(1.07 + 0.03 * z[:, 9], 1.0, 1.14),
-        chew_g=0.034 * np.exp(0.2 * z[:, 10]),
+        chew_g=np.clip(0.03 * np.exp(0.35 * z[:, 10]), 0.012, 0.08),
         # cud cycle ~46-58 s, pause 3-5 s (FIELD.md)
         cud_s=46.0 + 12.0 * u[:, 0],
         pause_s=3.0 + 2.0 * u[:, 1],
@@ -132,6 +132,7 @@ def neck_acceleration(
     state: np.ndarray,
     prev_state: np.ndarray,
     bout_t0: np.ndarray,
+    bout: np.ndarray,
     bout_u: np.ndarray,
     bout_z: np.ndarray,
     roll: np.ndarray,
@@ -140,8 +141,8 @@ def neck_acceleration(
 
     ``row`` indexes ``tr`` (the animal), ``t`` is seconds since the herd's epoch, ``state``
     and ``prev_state`` the schedule state now and in the bout before, ``bout_t0`` the bout's
-    start (same clock), ``bout_u``/``bout_z`` the bout's own uniforms ``[M, 8]`` and normals
-    ``[M, 4]``, ``roll`` the collar's roll about the neck in radians. Motion noise is left to
+    start (same clock), ``bout`` the bout's row in the tables ``bout_u`` (uniforms) and
+    ``bout_z`` (normals) of per-bout random numbers, ``roll`` the collar's roll about the neck in radians. Motion noise is left to
     the caller (see MOTION_G), who draws it together with the sensor's noise.
     """
     m = t.shape[0]
@@ -149,7 +150,7 @@ def neck_acceleration(
     since = t - bout_t0
     # posture: per-animal mean pitch, a per-bout offset, slow wander; blend in from the
     # previous bout's posture over ~2 s
-    pitch = tr.pitch[row, state] + 3.0 * bout_z[:, 0]
+    pitch = tr.pitch[row, state] + 3.0 * bout_z[bout, 0]
     wf, wp = tr.wander_f[row], tr.wander_p[row]
     wander = (
         np.sin(2 * np.pi * wf[:, 0] * t + wp[:, 0])
@@ -169,7 +170,7 @@ def neck_acceleration(
     # ruminating: chewing with a pause per cud, and a regurgitation movement in the pause
     i = sub((State.RUM_S, State.RUM_L))
     if i.size:
-        r, ti, bu, bz = row[i], t[i], bout_u[i], bout_z[i]
+        r, ti, bu, bz = row[i], t[i], bout_u[bout[i]], bout_z[bout[i]]
         cyc = tr.cud_s[r] * (1.0 + 0.04 * bz[:, 1])
         pos = np.mod(since[i] + cyc * bu[:, 0], cyc)
         pause = tr.pause_s[r]
@@ -196,13 +197,13 @@ def neck_acceleration(
         env, qi = _slot_bumps(kk, ti, 4.0, 0.45, 0.35, 2)
         for ax in range(3):
             d[i, ax] += 0.16 * env * rand.normal(kk, qi + 3 + ax)
-        lifted = _slot_level(kk, ti, 8.0, 0.12, 3)
+        lifted = _slot_level(kk, ti, 8.0, 0.2, 3)
         pitch[i] -= 28.0 * lifted
     # grazing: a sharp bite per bite cycle, steps now and then, head sweeps
     i = sub(State.GRAZE)
     if i.size:
         r, ti, kk = row[i], t[i], k[i]
-        cyc = tr.bite_hz[r] * ti + bout_u[i, 2]
+        cyc = tr.bite_hz[r] * ti + bout_u[bout[i], 2]
         n_bite = np.floor(cyc)
         frac = cyc - n_bite
         jit = 0.12 * (rand.uniform(kk, n_bite.astype(np.int64) * 4) - 0.5)
@@ -210,8 +211,15 @@ def neck_acceleration(
         pulse = pulse - np.exp(-0.5 * ((frac - 0.68 - jit) / 0.1) ** 2) * 0.5  # head recoils
         bamp = tr.bite_g[r] * (0.7 + 0.6 * rand.uniform(kk, n_bite.astype(np.int64) * 4 + 1))
         bamp = bamp * (rand.uniform(kk, n_bite.astype(np.int64) * 4 + 2) < 0.9)  # missed bites
+        # now and then the head comes up to look around, chewing the mouthful, no bites
+        up = _slot_level(kk, ti, 12.0, 0.1, 6)
+        bamp = bamp * (1.0 - up)
         d[i, 0] += 0.8 * bamp * pulse
         d[i, 2] += bamp * pulse
+        chew = 0.8 * tr.chew_g[r] * up * np.sin(2 * np.pi * tr.eat_hz[r] * ti)
+        d[i, 2] += chew
+        d[i, 0] += 0.45 * chew
+        pitch[i] -= 50.0 * up
         env, qi = _slot_bumps(kk, ti, 5.0, 0.4, 0.5, 4)
         sp = np.sin(2 * np.pi * tr.stride_hz[r] * ti)
         d[i, 1] += 0.12 * env * sp
@@ -220,10 +228,10 @@ def neck_acceleration(
     # walking: lateral sway at the stride frequency, vertical and fore-aft bob at twice it
     i = sub(State.WALK)
     if i.size:
-        r, ti, bu, bz = row[i], t[i], bout_u[i], bout_z[i]
-        f = tr.stride_hz[r] * (1.0 + 0.03 * bz[:, 1])
+        r, ti, bu, bz = row[i], t[i], bout_u[bout[i]], bout_z[bout[i]]
+        f = tr.stride_hz[r] * (1.0 + 0.05 * bz[:, 1])
         ph = 2 * np.pi * f * ti + 2 * np.pi * bu[:, 3]
-        a = tr.stride_g[r] * (1.0 + 0.15 * bz[:, 2]) * _smoothstep(since[i] / 1.5)
+        a = tr.stride_g[r] * np.exp(0.3 * bz[:, 2]) * _smoothstep(since[i] / 1.5)
         d[i, 1] += a * (np.sin(ph) + 0.15 * np.sin(3 * ph))
         d[i, 2] += 0.55 * a * np.sin(2 * ph + 0.9)
         d[i, 0] += 0.35 * a * np.sin(2 * ph + 2.1)
@@ -238,6 +246,9 @@ def neck_acceleration(
         env = env * (rand.uniform(kk, qi + 6) < p_move)
         for ax in range(3):
             d[i, ax] += 0.1 * env * rand.normal(kk, qi + 3 + ax)
+        # licking, idle jaw movement: a few seconds of chewing-like motion now and then
+        jaw = _slot_level(kk, ti, 10.0, 0.06, 7)
+        d[i, 2] += 0.6 * tr.chew_g[r] * jaw * np.sin(2 * np.pi * 1.2 * tr.eat_hz[r] * ti)
     # lying down or getting up: a lurch of the head and neck over a few seconds
     change = (LYING[state] != LYING[prev_state]) & (since < 5.0)
     i = np.flatnonzero(change)
