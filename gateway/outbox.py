@@ -205,9 +205,9 @@ class Sink(Protocol):
 
 def parse_retry_after(value: str | None, now: float | None = None) -> float | None:
     """Seconds from a Retry-After header (delta-seconds or HTTP-date, RFC 9110 10.2.3)."""
-    if not value:
+    if not value or len(value) > 64:  # a real header is a number or a 29-character date
         return None
-    value = value.strip()[:64]
+    value = value.strip()
     try:
         seconds = float(value)
     except ValueError:
@@ -418,11 +418,14 @@ class Outbox:
         )
         self._add_bytes(conn, -freed)
         dropped = max(lost.values(), default=0)
+        so_far = conn.execute(
+            "SELECT COALESCE(MAX(n), 0) FROM outbox_counts WHERE what = 'dropped'"
+        ).fetchone()[0]
         message = (
             f"outbox reached its cap of {self.max_bytes / 1e6:g} MB (store.outbox_max_mb):"
             f" dropped the {dropped} oldest undelivered facts ("
             + ", ".join(f"{s}: {n}" for s, n in sorted(lost.items()))
-            + "); fix the failing sink or raise the cap"
+            + f"; {so_far} in all so far); fix the failing sink or raise the cap"
         )
         log.error("outbox: %s", message)
         alert = fact_of(GatewayAlert("outbox_full", message, self.clock(), dropped))
