@@ -15,6 +15,7 @@ from __future__ import annotations
 
 import contextlib
 import multiprocessing as mp
+import os
 import queue
 import threading
 import time
@@ -62,6 +63,12 @@ class _Link:
         self.client = mqtt.Client(
             mqtt.CallbackAPIVersion.VERSION2, client_id=client_id, protocol=mqtt.MQTTv311
         )
+        # Credentials as for the gateway, from the environment (inherited by worker processes):
+        # a demo herd logs in to a broker that refuses anonymous clients (deploy/mosquitto/acl).
+        if os.environ.get("BOUTLINE_MQTT_USERNAME"):
+            self.client.username_pw_set(
+                os.environ["BOUTLINE_MQTT_USERNAME"], os.environ.get("BOUTLINE_MQTT_PASSWORD", "")
+            )
         self.client.max_inflight_messages_set(1000)
         self.client.max_queued_messages_set(0)
         self.client.on_connect = self._on_connect

@@ -10,6 +10,7 @@ import os
 import queue
 import re
 import subprocess
+import sys
 import threading
 from collections.abc import Callable, Iterator
 from pathlib import Path
@@ -301,3 +302,30 @@ def test_make_passwd_hashes_and_keeps_secrets_off_disk(tmp_path):
     text = (tmp_path / "passwd").read_text()
     assert "spaced pass" not in text  # a space never appears in the hash's base64
     assert (tmp_path / "passwd").stat().st_mode & 0o077 == 0
+
+
+def _simulate(broker: ServerProcess, env: dict[str, str]) -> subprocess.CompletedProcess:
+    argv = [sys.executable, "-m", "gateway.cli", "simulate", "publish", "--host", broker.host]
+    argv += ["--port", str(broker.port), "--site", SITE, "--herd", "2", "--flat-out"]
+    argv += ["--duration", "5", "--qos", "1", "--seed", "3"]
+    base = {k: v for k, v in os.environ.items() if not k.startswith("BOUTLINE_")}
+    return subprocess.run(argv, env=base | env, capture_output=True, text=True, timeout=120)
+
+
+def test_demo_herd_logs_in_as_simulator(broker, clients):
+    # The compose profile "demo": the publisher takes the ACL's simulator login from the env.
+    gateway = clients("gateway", PASSWORDS["gateway"])
+    assert gateway.subscribe("barn/+/collars/+/accel").value == 1
+    env = {"BOUTLINE_MQTT_USERNAME": "simulator", "BOUTLINE_MQTT_PASSWORD": PASSWORDS["simulator"]}
+    done = _simulate(broker, env)
+    assert done.returncode == 0, done.stderr
+    topics = set()
+    while not gateway.messages.empty() or len(topics) < 2:
+        topics.add(gateway.next_payload()[0])
+    assert len(topics) == 2 and all(t.startswith(f"barn/{SITE}/collars/") for t in topics)
+
+
+def test_demo_herd_without_login_is_refused_with_a_clear_error(broker):
+    done = _simulate(broker, {})
+    assert done.returncode == 1
+    assert done.stderr.startswith("Error: ") and "refused" in done.stderr, done.stderr
