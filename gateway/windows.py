@@ -27,8 +27,10 @@ animal's windows start on the same instants, multiples of the hop.
 - Rate limit: a token bucket per animal stream on receive time, ``max_frame_rate_hz`` with a
   burst of a minute of frames at that rate (a collar flushing its backlog after a radio drop).
 - Silence: with ``speed`` set (collar seconds per gateway second; 1 for live collars), an
-  animal silent for longer than a window plus the reorder tolerance has its missing time
-  committed as no-data hops while it is silent, not only when it comes back.
+  animal silent for longer than a window plus the reorder tolerance (and two frames) has its
+  missing time committed as no-data hops while it is silent, not only when it comes back.
+  "Now" is the receive time of the freshest frame of any animal, so a gateway behind on its
+  queue does not mistake everybody for silent; after a minute without any frame, the clock.
 
 >>> import numpy as np
 >>> from gateway.types import Frame
@@ -59,6 +61,7 @@ _DUP_MEMORY = 256  # frames per stream remembered for duplicate detection
 _MAX_PENDING = 64  # frames held for reordering per stream; more is a flood, commit the oldest
 _BURST_S = 60.0  # token bucket depth: a minute of frames at the rate limit
 _GAP_PERIODS = 1.5  # a hole longer than this many sample periods is missing data
+_ALL_SILENT_S = 60.0  # gateway seconds without any frame before silence is judged on the wall clock
 _EPS = 1e-6  # grid rounding slack in samples (float time of ~1.7e9 s has ~2e-7 s resolution)
 
 
@@ -159,6 +162,7 @@ class Windows:
         self._w_ready: list[float] = []
         self._no_data: list[NoDataHop] = []
         self.clock_substituted = 0
+        self._max_rx = 0.0  # latest receive time of any accepted frame
 
     @classmethod
     def for_model(cls, model: object, windows: object, limits: object, **kw: object) -> Windows:
@@ -227,6 +231,8 @@ class Windows:
             )
         self._remember_seq(st, frame.seq, frame.t)
         st.last_rx = max(st.last_rx, rx)
+        if rx > self._max_rx:
+            self._max_rx = rx
         st.span_s = span
         st.watermark = max(st.watermark, t + span)
         if self.reorder_s <= 0.0 or st.tail_t is None or t - st.tail_t <= _GAP_PERIODS / frame.hz:
@@ -389,6 +395,11 @@ class Windows:
         """Commit the missing time of animals that went silent; returns how many were."""
         if self.speed is None:
             return 0
+        # Judge silence against the freshest frame handled, not the wall clock, so a gateway
+        # that is behind on its queue does not take everybody for silent; when nothing at all
+        # arrives for a minute, the wall clock decides.
+        if 0.0 < now - self._max_rx < _ALL_SILENT_S:
+            now = self._max_rx
         count = 0
         for st in self._streams.values():
             if st.head is None or st.last_rx <= 0.0:

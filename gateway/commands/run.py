@@ -60,12 +60,12 @@ def serve(settings: Any, stop: threading.Event, *, install_sighup: bool = True) 
     from ..http import Health, HttpEndpoint
     from ..ingest import Ingest
     from ..outbox import Outputs
-    from ..store import Store
+    from ..store import STORE_FILE, Store
     from ..systemd import Notifier
 
     notifier = Notifier()
     store = Store.open(
-        settings.data_dir,
+        settings.data_dir / STORE_FILE,
         checkpoint_pages=settings.store.checkpoint_pages,
     )
     outputs = http = None
