@@ -34,7 +34,9 @@ from .errors import ConfigError
 
 __all__ = [
     "ENV_PREFIX",
+    "AlertsSettings",
     "BoutsSettings",
+    "BudgetsSettings",
     "HttpSettings",
     "InfluxSettings",
     "LimitsSettings",
@@ -188,6 +190,66 @@ class BoutsSettings(_Section):
         return float(getattr(self, f"{behaviour}_criterion_s", self.other_criterion_s))
 
 
+class BudgetsSettings(_Section):
+    """Daily time budgets per animal (gateway/budgets.py); days follow [site] timezone/day_start_hour."""
+
+    final_after_h: float = Field(
+        3.0, ge=0, le=72, description="a day is final this long after it ends, bouts open or not"
+    )
+    emit_interval_s: float = Field(
+        900.0, ge=10, le=86400, description="provisional budgets go to the sinks this often"
+    )
+
+
+# Alert defaults. Rumination: a drop of >= 20-30 % against the animal's own 7-10 day baseline,
+# or a z-score >= 2-3, is the usual rule (FIELD.md, health signals, common practice); estrus
+# activity ~2.8-fold for 8-9 h (Lovendahl & Chagunda 2010, J Dairy Sci, FIELD.md). Hold times,
+# floors and the collar limits: common practice, no source.
+class AlertsSettings(_Section):
+    """Own-baseline alerts (gateway/alerts.py): decision support, never a diagnosis."""
+
+    enabled: bool = True
+    baseline_days: int = Field(7, ge=3, le=30, description="full days in each baseline")
+    min_baseline_days: int = Field(5, ge=2, le=30, description="fewer usable days: no alert")
+    lookback_days: int = Field(14, ge=3, le=60, description="search this far back for them")
+    min_coverage: float = Field(0.8, gt=0, le=1, description="a day or window counts from here")
+    rumination_drop: float = Field(0.25, gt=0, lt=1, description="raise: 24 h this far below")
+    rumination_clear: float = Field(0.15, ge=0, lt=1, description="clear: back within this")
+    rumination_min_z: float = Field(
+        2.0, ge=0, le=10, description="and this many SDs of her own days below (0: off)"
+    )
+    rumination_hold_h: int = Field(3, ge=1, le=48, description="raise once it held this long")
+    activity_window_h: int = Field(2, ge=1, le=12, description="rolling activity window")
+    activity_ratio: float = Field(2.0, gt=1, le=20, description="raise: index this many times")
+    activity_clear_ratio: float = Field(1.5, ge=1, le=20, description="clear: below this")
+    activity_hold_h: int = Field(2, ge=1, le=24, description="raise once it held this long")
+    activity_floor_min: float = Field(
+        5.0, ge=0, le=120, description="baseline walking per window never counts below this"
+    )
+    inactive_h: float = Field(12.0, gt=0, le=72, description="no feeding/grazing/walking this long")
+    silent_min: float = Field(60.0, gt=0, le=10080, description="no frames this long")
+    battery_low_v: float = Field(3.5, gt=0, le=10, description="raise below this voltage")
+    battery_clear_v: float = Field(3.6, gt=0, le=10, description="clear above this voltage")
+    rotation_deg: float = Field(
+        25.0, gt=0, le=180, description="collar roll this far from its baseline"
+    )
+    rotation_hold_h: float = Field(3.0, gt=0, le=72, description="for this long")
+
+    @model_validator(mode="after")
+    def _check(self) -> AlertsSettings:
+        if self.min_baseline_days > self.baseline_days:
+            raise ValueError("min_baseline_days must be <= baseline_days")
+        if self.lookback_days < self.baseline_days:
+            raise ValueError("lookback_days must be >= baseline_days")
+        if self.rumination_clear >= self.rumination_drop:
+            raise ValueError("rumination_clear must be below rumination_drop (hysteresis)")
+        if self.activity_clear_ratio >= self.activity_ratio:
+            raise ValueError("activity_clear_ratio must be below activity_ratio (hysteresis)")
+        if self.battery_clear_v <= self.battery_low_v:
+            raise ValueError("battery_clear_v must be above battery_low_v (hysteresis)")
+        return self
+
+
 class StoreSettings(_Section):
     data_dir: str = Field("~/.local/share/boutline", min_length=1)
     checkpoint_pages: int = Field(1000, ge=100, le=1_000_000, description="WAL autocheckpoint")
@@ -256,6 +318,8 @@ class Settings(BaseModel):
     outputs: OutputsSettings = OutputsSettings()
     http: HttpSettings = HttpSettings()
     limits: LimitsSettings = LimitsSettings()
+    budgets: BudgetsSettings = BudgetsSettings()
+    alerts: AlertsSettings = AlertsSettings()
 
     @property
     def data_dir(self) -> Path:
