@@ -75,7 +75,13 @@ class EmbeddedBroker:
             loop = asyncio.new_event_loop()
             self._loop = loop
             asyncio.set_event_loop(loop)
-            config = {"listeners": {"default": {"type": "tcp", "bind": f"{self.host}:{self.port}"}}}
+            config = {
+                "listeners": {"default": {"type": "tcp", "bind": f"{self.host}:{self.port}"}},
+                # anonymous loopback clients only; no $SYS topics, no packet logging
+                "plugins": {
+                    "amqtt.plugins.authentication.AnonymousAuthPlugin": {"allow_anonymous": True}
+                },
+            }
             try:
                 broker = Broker(config, loop=loop)
                 loop.run_until_complete(broker.start())
@@ -403,7 +409,9 @@ def _summary(gateway: Any, view: HerdView, store: Any, pub_state: dict, wall_s: 
     bouts = store._query("SELECT COUNT(*) FROM bouts")[0][0] if store else 0
     return {
         "animals": len(view.animals),
-        "frames_published": pub_state["frames"],
+        "frames_published": pub_state["result"].frames
+        if pub_state["result"]
+        else pub_state["frames"],
         "frames_in": s["frames_in"],
         "rejects": s["rejects"],
         "windows_classified": s["windows_classified"],
@@ -436,9 +444,7 @@ def _print_summary(console: Any, summary: dict[str, Any], view: HerdView) -> Non
         f" (rejected: {rejects}), {summary['windows_classified']:.0f} windows classified,"
         f" {summary['bouts_stored']} bouts stored in {summary['wall_s']:.0f} s."
     )
-    console.print(
-        f"Store: {summary['store']}  (try: boutline report bouts --data-dir {Path(summary['store']).parent})"
-    )
+    console.print(f"Store: {summary['store']}")
     console.print(CAUTION)
 
 
