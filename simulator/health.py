@@ -107,11 +107,13 @@ def draw_events(
             ki = rand.key(seed, _STREAM_EVENTS, int(i), len(kind))
             u = rand.uniform(ki, np.arange(8))
             if kind == "illness":
-                first = min(2, days - 1)
-                day = first + int(u[0] * max(days - first - 1, 1))
-                onset = midnight0 + day * DAY_S + u[1] * DAY_S
                 ramp = 2.0 + 2.0 * u[2]
-                length = ramp + 2.0 + 3.0 * u[3]
+                # two ordinary days first; the full drop reached a day before the span ends
+                first = min(2, days - 1)
+                room = days - first - int(np.ceil(ramp)) - 3
+                day = first + int(u[0] * max(room, 1))
+                onset = midnight0 + day * DAY_S + u[1] * DAY_S
+                length = ramp + (2.0 + 2.0 * u[3]) + 2.0  # ramp, plateau, recovery
                 params = {
                     "rumination_drop": round(0.2 + 0.2 * u[4], 3),
                     "ramp_days": round(ramp, 3),

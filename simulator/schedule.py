@@ -74,6 +74,7 @@ _STREAM_MILKING = 13
 _STREAM_BOUT = 14
 _BOUT_U = 8  # uniforms per bout
 _BOUT_Z = 4  # normals per bout
+_NEED_TAU_MIN = 40.0  # minutes owed that make a behaviour e times likelier
 
 
 def _bump(h: np.ndarray, centre: float, width: float) -> np.ndarray:
@@ -100,8 +101,10 @@ class Scenario:
     milking_walk_min: float
     milking_stand_min: float
     feed_deliveries_h: tuple[float, ...] = ()
-    # expected daily rumination of an average animal, used to turn "-63 min" into a fraction
+    # daily rumination and eating (trough or grazing) an average animal aims at; the
+    # schedule's homeostat keeps each animal near its own targets from day to day
     rumination_min_per_day: float = 440.0
+    eating_min_per_day: float = 265.0
     extra: dict[str, float] = field(default_factory=dict)
 
     def rhythm(self, h: np.ndarray) -> np.ndarray:
@@ -109,9 +112,9 @@ class Scenario:
         f = np.ones((h.shape[0], State.N))
         night = 0.5 + 0.5 * np.cos(2 * np.pi * (h - 1.5) / 24.0)  # 1 at 01:30, 0 at 13:30
         lying = 0.45 + 0.9 * night
-        f[:, State.RUM_L] = lying * (0.9 + 0.5 * night)
+        f[:, State.RUM_L] = lying * (0.5 + 1.4 * night)
         f[:, State.REST_L] = lying
-        f[:, State.RUM_S] = 0.8 + 0.4 * night
+        f[:, State.RUM_S] = 0.5 + 1.0 * night
         if self.feed_deliveries_h:
             feed = 0.35 + sum(2.6 * _since(h, d, 1.3) for d in self.feed_deliveries_h)
             f[:, State.FEED] = feed * (1.0 - 0.7 * _bump(h, 2.5, 1.5))
@@ -133,41 +136,43 @@ class Scenario:
 _HOUSED = Scenario(
     name="housed",
     #            GRAZE FEED RUM_S RUM_L REST_S REST_L WALK
-    median_min=(30.0, 23.0, 14.0, 24.0, 14.0, 27.0, 2.0),
-    sigma=(0.5, 0.45, 0.5, 0.5, 0.7, 0.6, 0.55),
+    median_min=(30.0, 21.5, 14.0, 28.0, 16.0, 26.0, 2.0),
+    sigma=(0.5, 0.4, 0.35, 0.35, 0.6, 0.5, 0.55),
     transitions=(
         (0.0, 0.0, 0.2, 0.2, 0.2, 0.2, 0.2),  # from grazing (unused when housed)
         (0.0, 0.0, 0.15, 0.1, 0.3, 0.05, 0.4),  # from feeding
         (0.0, 0.2, 0.0, 0.2, 0.2, 0.1, 0.2),  # from ruminating standing
-        (0.0, 0.08, 0.03, 0.0, 0.2, 0.6, 0.12),  # from ruminating lying
+        (0.0, 0.08, 0.03, 0.0, 0.2, 0.75, 0.12),  # from ruminating lying
         (0.0, 0.45, 0.15, 0.1, 0.0, 0.1, 0.2),  # from resting standing
-        (0.0, 0.1, 0.03, 0.65, 0.15, 0.0, 0.12),  # from resting lying
+        (0.0, 0.1, 0.03, 0.8, 0.15, 0.0, 0.12),  # from resting lying
         (0.0, 0.5, 0.1, 0.1, 0.2, 0.1, 0.0),  # from walking
     ),
     milkings_h=(5.0, 16.0),
     milking_walk_min=3.0,
     milking_stand_min=35.0,
     feed_deliveries_h=(6.0, 17.0),
-    rumination_min_per_day=440.0,
+    rumination_min_per_day=445.0,  # Braun et al. 2015: 441 +/- 71 min/d (FIELD.md)
+    eating_min_per_day=265.0,  # Braun et al. 2015: 265 +/- 54 min/d housed (FIELD.md)
 )
 
 _PASTURE = Scenario(
     name="pasture",
-    median_min=(37.0, 20.0, 16.0, 28.0, 11.0, 21.0, 2.2),
-    sigma=(0.6, 0.5, 0.5, 0.5, 0.7, 0.6, 0.6),
+    median_min=(37.0, 20.0, 16.0, 30.0, 12.0, 22.0, 2.2),
+    sigma=(0.5, 0.5, 0.35, 0.35, 0.6, 0.5, 0.6),
     transitions=(
         (0.0, 0.0, 0.25, 0.25, 0.15, 0.1, 0.35),  # from grazing
         (0.0, 0.0, 0.2, 0.2, 0.2, 0.2, 0.2),  # from feeding (unused at pasture)
         (0.35, 0.0, 0.0, 0.3, 0.15, 0.05, 0.15),  # from ruminating standing
-        (0.12, 0.0, 0.03, 0.0, 0.12, 0.6, 0.12),  # from ruminating lying
+        (0.12, 0.0, 0.03, 0.0, 0.12, 0.75, 0.12),  # from ruminating lying
         (0.4, 0.0, 0.15, 0.15, 0.0, 0.1, 0.2),  # from resting standing
-        (0.12, 0.0, 0.03, 0.65, 0.12, 0.0, 0.12),  # from resting lying
+        (0.12, 0.0, 0.03, 0.8, 0.12, 0.0, 0.12),  # from resting lying
         (0.55, 0.0, 0.1, 0.1, 0.15, 0.1, 0.0),  # from walking
     ),
     milkings_h=(5.0, 16.0),
     milking_walk_min=11.0,
     milking_stand_min=30.0,
-    rumination_min_per_day=430.0,
+    rumination_min_per_day=445.0,
+    eating_min_per_day=510.0,  # grazing ~8.5 h/d median at pasture (FIELD.md, trade press)
 )
 
 SCENARIOS: dict[str, Scenario] = {"housed": _HOUSED, "pasture": _PASTURE}
@@ -252,6 +257,20 @@ class Schedule:
         lo, hi = int(self.ptr[i]), int(self.ptr[i + 1])
         return self.start[lo:hi], self.end[lo:hi], self.state[lo:hi]
 
+    def lying_bouts(self, i: int) -> tuple[np.ndarray, np.ndarray]:
+        """(start, end) of animal ``i``'s lying bouts: runs of lying states, back to back."""
+        s, e, st = self.for_animal(i)
+        ly = LYING[st]
+        if not ly.any():
+            return np.zeros(0), np.zeros(0)
+        prev_joined = np.concatenate([[False], ly[:-1] & (np.abs(s[1:] - e[:-1]) < 1e-6)])
+        first = ly & ~prev_joined
+        run = np.cumsum(first) - 1
+        starts = s[first]
+        ends = np.zeros(starts.shape)
+        np.maximum.at(ends, run[ly], e[ly])
+        return starts, ends
+
     def minutes(self, t0: float, t1: float, lying: bool = False) -> np.ndarray:
         """Minutes per animal and behaviour ``[n_animals, 5]`` inside ``[t0, t1)``.
 
@@ -275,6 +294,7 @@ class AnimalTraits:
     pref: np.ndarray  # [N, 7] multipliers on transition weights
     dur: np.ndarray  # [N, 7] multipliers on median bout length
     milk_offset_s: np.ndarray  # [N] position in the milking order
+    target_min: np.ndarray  # [N, 2] daily minutes aimed at: rumination, eating
 
 
 def draw_traits(seed: int, animals: np.ndarray, scenario: np.ndarray) -> AnimalTraits:
@@ -286,7 +306,14 @@ def draw_traits(seed: int, animals: np.ndarray, scenario: np.ndarray) -> AnimalT
     pref = np.exp(0.2 * z[:, : State.N])
     dur = np.exp(0.15 * z[:, State.N : 2 * State.N])
     milk = rand.uniform(k[:, 0], 99) * 50.0 * 60.0  # milking order spread over ~50 min
-    return AnimalTraits(scenario=scenario, pref=pref, dur=dur, milk_offset_s=milk)
+    zt = rand.normal(k, np.arange(2)[None, :] + 200)
+    # between-cow spread: rumination SD 71 of 441 (~16 %), eating SD 54 of 265 (~20 %)
+    # (Braun et al. 2015, FIELD.md)
+    spread = np.array([0.17, 0.22])
+    target = np.exp(spread[None, :] * zt)
+    return AnimalTraits(
+        scenario=scenario, pref=pref, dur=dur, milk_offset_s=milk, target_min=target
+    )
 
 
 class ScheduleBuilder:
@@ -320,6 +347,9 @@ class ScheduleBuilder:
             rand.uniform(k0, 0) < 0.5, State.REST_L, State.RUM_L
         )  # the herd starts the night lying
         self.day = 0
+        base = np.array([[s.rumination_min_per_day, s.eating_min_per_day] for s in scenarios])
+        self.traits.target_min = self.traits.target_min * base[self.scenario_idx]
+        self.need = np.zeros((n, 2))  # minutes owed to rumination and eating
         self._W = np.stack([np.array(s.transitions) for s in scenarios])
         self._med = np.stack([np.array(s.median_min) for s in scenarios]) * 60.0
         self._sig = np.stack([np.array(s.sigma) for s in scenarios])
@@ -365,9 +395,10 @@ class ScheduleBuilder:
         kd = rand.keys(rand.key(self.seed, _STREAM_SCHEDULE, day + 1), self.animals)
         sc = self.scenario_idx
         # the day's own mood: a multiplier per state, so budgets vary from day to day
-        dayvar = np.exp(0.12 * rand.normal(kd[:, None], np.arange(State.N)[None, :] + 10**6))
+        dayvar = np.exp(0.06 * rand.normal(kd[:, None], np.arange(State.N)[None, :] + 10**6))
         out_a, out_s, out_e, out_st = [], [], [], []
-        t, state = self.t.copy(), self.state.copy()
+        t, state, need = self.t.copy(), self.state.copy(), self.need.copy()
+        rate = self.traits.target_min / 1440.0  # minutes owed per minute that passes
         step = 0
         while True:
             active = t < d1
@@ -389,6 +420,12 @@ class ScheduleBuilder:
             u = rand.uniform(kd, 3 * step)
             z = rand.normal(kd, 3 * step + 1)
             w = self._W[sc, state] * self._rhythm(t) * self.traits.pref * dayvar
+            # homeostat: what is owed makes it likelier (rumen fill, hunger)
+            push = np.exp(np.clip(need / _NEED_TAU_MIN, -3.0, 3.0))
+            w[:, State.RUM_S] *= push[:, 0]
+            w[:, State.RUM_L] *= push[:, 0]
+            w[:, State.FEED] *= push[:, 1]
+            w[:, State.GRAZE] *= push[:, 1]
             w[rows, state] = 0.0
             cw = np.cumsum(w, axis=1)
             pick = np.argmax(cw > (u * cw[:, -1])[:, None], axis=1)
@@ -404,10 +441,19 @@ class ScheduleBuilder:
             out_s.append(t[a])
             out_e.append(new_end[a])
             out_st.append(new_state[a])
+            spent = np.where(a, new_end - t, 0.0) / 60.0
+            rum_now = (new_state == State.RUM_S) | (new_state == State.RUM_L)
+            eat_now = (new_state == State.FEED) | (new_state == State.GRAZE)
+            # rumination is owed faster at night: 55-62 % of it falls at night (Soriani et
+            # al. 2012, FIELD.md); the cosine peaks at 02:00
+            mid_h = ((0.5 * (t + new_end)) % DAY_S) / 3600.0
+            circ = 1.0 + 0.25 * np.cos(2 * np.pi * (mid_h - 2.0) / 24.0)
+            need[:, 0] += spent * (rate[:, 0] * circ - rum_now)
+            need[:, 1] += spent * (rate[:, 1] - eat_now)
             t = np.where(a, new_end, t)
             state = np.where(a, new_state, state)
             step += 1
-        self.t, self.state = t, state
+        self.t, self.state, self.need = t, state, need
         self.day += 1
         return (
             np.concatenate(out_a),

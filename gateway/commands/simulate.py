@@ -124,11 +124,10 @@ def record(
 
     Example: boutline simulate record --herd 100 --days 1 --scenario mixed --seed 1 --out rec/
     """
-    from rich.console import Console
-    from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn
-
     from simulator.herd import DEFAULT_START
     from simulator.record import record as do_record
+
+    from ._progress import step_progress
 
     if processes < 0:
         raise ConfigError(f"--processes {processes} must be 0 (one per core) or more")
@@ -136,17 +135,8 @@ def record(
         scenario, seed, hz, range_g, roll, loss, silence, illness, estrus, calving,
         _start(start, DEFAULT_START),
     )  # fmt: skip
-    console = Console(stderr=True)
     t0 = time.monotonic()
-    with Progress(
-        TextColumn("recording collars"),
-        BarColumn(),
-        MofNCompleteColumn(),
-        console=console,
-        transient=True,
-        disable=not console.is_terminal,
-    ) as bar:
-        task = bar.add_task("record", total=max(herd, 1))
+    with step_progress("recording collars", max(herd, 1)) as advance:
         summary = do_record(
             out,
             n_animals=herd,
@@ -154,7 +144,7 @@ def record(
             fmt=fmt,
             processes=processes or None,
             overwrite=overwrite,
-            progress=lambda done, total: bar.update(task, completed=done, total=total),
+            progress=lambda done, total: advance(f"{done}/{total}") if done else None,
             **kwargs,
         )
     typer.echo(
