@@ -30,9 +30,11 @@ def live_store(tmp_path):
     writer.execute("PRAGMA journal_mode=WAL")
     writer.execute("PRAGMA wal_autocheckpoint=0")  # as between two checkpoints of the daemon
     writer.execute("CREATE TABLE bouts (animal TEXT, start REAL, end REAL)")
+    writer.execute("BEGIN")
     writer.executemany(
         "INSERT INTO bouts VALUES (?, ?, ?)", [(f"cow-{i}", i, i + 60.0) for i in range(500)]
     )
+    writer.execute("COMMIT")
     assert (tmp_path / f"{STORE_FILE}-wal").stat().st_size > 0
     yield tmp_path, writer
     writer.close()
