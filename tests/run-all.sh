@@ -11,6 +11,8 @@ command -v influxd >/dev/null 2>&1 || need+=(influxdb)
 command -v victoria-metrics >/dev/null 2>&1 || need+=(victoria-metrics)
 command -v docker-compose >/dev/null 2>&1 || need+=(docker-compose)
 command -v openssl >/dev/null 2>&1 || need+=(openssl)
+command -v sqlite3 >/dev/null 2>&1 || need+=(sqlite3)
+command -v systemd-analyze >/dev/null 2>&1 || need+=(systemd)
 if [ ${#need[@]} -gt 0 ]; then
   sudo=""
   [ "$(id -u)" -eq 0 ] || sudo="sudo"
