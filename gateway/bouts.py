@@ -52,7 +52,7 @@ from typing import Any
 import numpy as np
 
 from .config import BoutsSettings, SmoothingSettings
-from .smoothing import AnimalSmoother, HmmParams, default_transitions
+from .smoothing import AnimalSmoother, HmmParams, SmootherBank, default_transitions
 from .types import NO_DATA, BoutClosed, Decision, NoDataHop, Posteriors, StateChanged
 
 __all__ = ["BoutSegmenter", "Event", "HerdTracker"]
@@ -316,15 +316,28 @@ class HerdTracker:
             transitions = default_transitions(len(classes), hop_s, sm.dwell_s)
         if prior is None and sm.prior == "uniform":
             prior = np.ones(len(classes))
-        self.params = HmmParams.build(
+        params = HmmParams.build(
             classes, transitions, hop_s, window_s=window_s, lag_s=sm.lag_s,
             bridge_s=sm.bridge_s, prior=prior,
         )  # fmt: skip
         b = self.bouts_settings
         self._min = {c: b.min_bout_s(c) for c in classes}
         self._crit = {c: b.criterion_s(c) for c in classes}
-        self.smoothers: dict[str, AnimalSmoother] = {}
+        self.bank = SmootherBank(params)
         self.segmenters: dict[str, BoutSegmenter] = {}
+
+    @property
+    def params(self) -> HmmParams:
+        return self.bank.params
+
+    @params.setter
+    def params(self, params: HmmParams) -> None:
+        """New chain parameters (a reloaded model with the same classes); state is kept."""
+        self.bank.set_params(params)
+
+    @property
+    def smoothers(self) -> dict[str, AnimalSmoother]:
+        return self.bank.handles
 
     @classmethod
     def from_model(
@@ -345,12 +358,21 @@ class HerdTracker:
     def classes(self) -> tuple[str, ...]:
         return self.params.classes
 
-    def _animal(self, animal: str) -> tuple[AnimalSmoother, BoutSegmenter]:
-        sm = self.smoothers.get(animal)
-        if sm is None:
-            sm = self.smoothers[animal] = AnimalSmoother(animal, self.params)
-            self.segmenters[animal] = BoutSegmenter(animal, self._min, self._crit)
-        return sm, self.segmenters[animal]
+    def _segmenter(self, animal: str) -> BoutSegmenter:
+        seg = self.segmenters.get(animal)
+        if seg is None:
+            seg = self.segmenters[animal] = BoutSegmenter(animal, self._min, self._crit)
+        return seg
+
+    def _segment(self, decided: list[Decision], decisions: list[Decision] | None) -> list[Event]:
+        out: list[Event] = []
+        segs = self.segmenters
+        for d in decided:
+            seg = segs.get(d.animal) or self._segmenter(d.animal)
+            out.extend(seg.push(d))
+        if decisions is not None:
+            decisions.extend(decided)
+        return out
 
     def push_many(
         self, items: Iterable[Posteriors | NoDataHop], decisions: list[Decision] | None = None
@@ -359,25 +381,11 @@ class HerdTracker:
 
         Decided hops are appended to ``decisions`` when a list is given (for evaluation).
         """
-        out: list[Event] = []
-        for item in items:
-            sm, seg = self._animal(item.animal)
-            for d in sm.push(item):
-                out.extend(seg.push(d))
-                if decisions is not None:
-                    decisions.append(d)
-        return out
+        return self._segment(self.bank.push_many(items), decisions)
 
     def flush(self, decisions: list[Decision] | None = None) -> list[Event]:
         """Decide every pending hop of every animal now (shorter lag for the last hops)."""
-        out: list[Event] = []
-        for animal, sm in self.smoothers.items():
-            seg = self.segmenters[animal]
-            for d in sm.flush():
-                out.extend(seg.push(d))
-                if decisions is not None:
-                    decisions.append(d)
-        return out
+        return self._segment(self.bank.flush_all(), decisions)
 
     def close_all(self) -> list[Event]:
         """Flush and close every open bout (end of a demo or replay; not for restarts)."""
@@ -397,14 +405,12 @@ class HerdTracker:
     @property
     def dropped(self) -> int:
         """Windows and hops ignored for arriving out of order."""
-        return sum(s.dropped for s in self.smoothers.values()) + sum(
-            s.dropped for s in self.segmenters.values()
-        )
+        return self.bank.dropped + sum(s.dropped for s in self.segmenters.values())
 
     @property
     def bad(self) -> int:
         """Posteriors that were unusable (NaN, negative, wrong length) and counted as no data."""
-        return sum(s.bad for s in self.smoothers.values())
+        return self.bank.bad
 
     # -- persistence -------------------------------------------------------------------------
 
@@ -417,14 +423,15 @@ class HerdTracker:
         stream ends; after a crash the undecided lag is lost and becomes no data. ``full=True``
         (clean shutdown) also keeps the smoother's pending hops, so nothing is lost.
         """
-        names = self.smoothers.keys() if animals is None else animals
+        handles = self.bank.handles
+        names = handles.keys() if animals is None else animals
         out = {}
         for a in names:
-            if a in self.smoothers:
+            if a in handles:
                 out[a] = {
                     "v": _SNAPSHOT_VERSION,
-                    "smoother": self.smoothers[a].snapshot(full=full),
-                    "bouts": self.segmenters[a].snapshot(),
+                    "smoother": handles[a].snapshot(full=full),
+                    "bouts": self._segmenter(a).snapshot(),
                 }
         return out
 
@@ -432,14 +439,14 @@ class HerdTracker:
         """Load snapshots; return the animals whose state was unusable (they start afresh)."""
         bad = []
         for animal, state in states.items():
-            sm, seg = self._animal(animal)
+            sm, seg = self.bank.get(animal), self._segmenter(animal)
             try:
                 if not isinstance(state, Mapping) or state.get("v") != _SNAPSHOT_VERSION:
                     raise ValueError("unknown snapshot version")
                 sm.restore(state["smoother"])
                 seg.restore(state["bouts"])
             except (ValueError, KeyError, TypeError):
-                del self.smoothers[animal], self.segmenters[animal]
-                self._animal(animal)
+                self.bank.reset(animal)
+                self.segmenters[animal] = BoutSegmenter(animal, self._min, self._crit)
                 bad.append(animal)
         return bad

@@ -43,7 +43,6 @@ from __future__ import annotations
 
 import base64
 import math
-from collections import deque
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
@@ -107,7 +106,9 @@ class HmmParams:
     offset_s: float  # where a window's hop sits inside it: (window_s - hop_s) / 2
     lag: int  # hops
     bridge_s: float
-    _powers: dict[int, tuple[np.ndarray, np.ndarray]] = field(default_factory=dict, repr=False)
+    # Transition matrix powers A^0..A^H and their logs, H = the longest bridged gap in hops.
+    powers: np.ndarray = field(repr=False)
+    log_powers: np.ndarray = field(repr=False)
 
     @classmethod
     def build(
@@ -148,260 +149,117 @@ class HmmParams:
                 raise ValueError(f"class prior must be {c} positive numbers")
             pri = pri / pri.sum()
         lag = int(math.ceil(lag_s / hop_s - 1e-9))
+        if bridge_s / hop_s > 100_000:
+            raise ValueError(f"bridge_s ({bridge_s:g}) is more than 100000 hops; shorten it")
+        pw = [np.eye(c)]
+        for _ in range(int(round(bridge_s / hop_s)) + 1):
+            pw.append(pw[-1] @ a)
+        powers = np.array(pw)
+        with np.errstate(divide="ignore"):
+            log_powers = np.log(powers)
         return cls(
             tuple(classes), a, pri, stationary_distribution(a), float(hop_s),
-            (window_s - hop_s) / 2.0, lag, float(bridge_s),
+            (window_s - hop_s) / 2.0, lag, float(bridge_s), powers, log_powers,
         )  # fmt: skip
 
     @property
     def n_classes(self) -> int:
         return len(self.classes)
 
-    def step_matrix(self, hops: int) -> tuple[np.ndarray, np.ndarray]:
-        """Transition matrix over ``hops`` hops and its log (cached; gaps are bridged by these)."""
-        hit = self._powers.get(hops)
-        if hit is None:
-            m = np.linalg.matrix_power(self.transitions, hops)
-            with np.errstate(divide="ignore"):
-                hit = (m, np.log(m))
-            if len(self._powers) < 1024:  # bounded: gaps of many lengths must not grow it
-                self._powers[hops] = hit
-        return hit
+    @property
+    def max_bridge_hops(self) -> int:
+        return self.powers.shape[0] - 1
 
-    def scaled_likelihood(self, p: np.ndarray) -> np.ndarray | None:
-        """Posteriors divided by the prior, floored and renormalised; None when unusable."""
-        try:
-            q = np.asarray(p, dtype=np.float64).reshape(-1)
-        except (TypeError, ValueError):
-            return None
-        if q.shape[0] != len(self.classes) or not np.isfinite(q).all() or (q < 0).any():
-            return None
-        total = q.sum()
-        if not total > 0:
-            return None
-        q = np.maximum(q / total, _P_FLOOR) / self.prior
-        return q / q.sum()
+    def scaled_likelihood(self, p: np.ndarray) -> np.ndarray:
+        """Rows of valid posteriors ``[N, C]`` divided by the prior, floored, renormalised."""
+        q = np.maximum(p / p.sum(axis=1, keepdims=True), _P_FLOOR) / self.prior
+        return q / q.sum(axis=1, keepdims=True)
 
-
-@dataclass(slots=True)
-class _Step:
-    t: float  # start of the decided slice
-    duration_s: float
-    kind: int  # _OBS or _GAP
-    ready_at: float
-    back: list[int] | None  # best predecessor of each state; None at a chain start
-    lik: np.ndarray | None  # scaled likelihood; None = flat (gap)
-    hops: int  # transition matrix power into this step
-    alpha: np.ndarray  # filtered distribution after this step
+    def valid_rows(self, p: np.ndarray) -> np.ndarray:
+        """Which rows of ``[N, C]`` are usable posteriors: finite, >= 0, not all zero."""
+        with np.errstate(invalid="ignore", over="ignore"):
+            total = p.sum(axis=1)
+            return (
+                np.isfinite(p).all(axis=1) & (p >= 0).all(axis=1) & (total > 0) & np.isfinite(total)
+            )
 
 
 class AnimalSmoother:
     """Fixed-lag Viterbi smoother for one animal: ``push`` items in time order, read decisions.
 
-    ``dropped`` counts windows refused for being out of order; ``bad`` counts posteriors that
-    were unusable (wrong length, NaN, negative, all zero) and became no-data.
+    A handle on one slot of a :class:`SmootherBank` (a private bank of one when built
+    directly). ``dropped`` counts windows refused for being out of order; ``bad`` counts
+    posteriors that were unusable (wrong length, NaN, negative, all zero) and became no-data.
     """
 
-    __slots__ = (
-        "_alpha", "_delta", "_nodata_run", "_steps", "animal", "bad", "dropped", "next_t",
-        "params",
-    )  # fmt: skip
+    __slots__ = ("_bank", "_slot", "animal")
 
     def __init__(self, animal: str, params: HmmParams) -> None:
-        self.animal = animal
-        self.params = params
-        self._steps: deque[_Step] = deque()
-        self._delta: np.ndarray | None = None  # log max-product scores, None: no chain
-        self._alpha: np.ndarray | None = None
-        self._nodata_run = 0.0
-        # Window start the chain expects next (None before the first item).
-        self.next_t: float | None = None
-        self.dropped = 0
-        self.bad = 0
+        bank = SmootherBank(params, capacity=1)
+        self.animal, self._bank, self._slot = animal, bank, bank._new_slot(animal)
+        bank.handles[animal] = self
+
+    @classmethod
+    def _on(cls, bank: SmootherBank, animal: str, slot: int) -> AnimalSmoother:
+        h = cls.__new__(cls)
+        h.animal, h._bank, h._slot = animal, bank, slot
+        return h
+
+    @property
+    def params(self) -> HmmParams:
+        return self._bank.params
+
+    @params.setter
+    def params(self, params: HmmParams) -> None:
+        if params is not self._bank.params:
+            self._bank.set_params(params)
 
     @property
     def pending(self) -> int:
         """Hops received but not decided yet (at most ``lag`` while the chain runs)."""
-        return len(self._steps)
+        return int(self._bank.count[self._slot])
+
+    @property
+    def next_t(self) -> float | None:
+        """Window start the chain expects next (None before the first item)."""
+        t = float(self._bank.next_t[self._slot])
+        return None if math.isnan(t) else t
+
+    @property
+    def dropped(self) -> int:
+        return int(self._bank.dropped_n[self._slot])
+
+    @property
+    def bad(self) -> int:
+        return int(self._bank.bad_n[self._slot])
 
     def push(self, item: Posteriors | NoDataHop) -> list[Decision]:
         """Add one window's posteriors (or a no-data stretch); return hops decided by it."""
-        hop = self.params.hop_s
-        if isinstance(item, Posteriors):
-            t, duration, lik = float(item.t_start), hop, self.params.scaled_likelihood(item.p)
-            if lik is None:
-                self.bad += 1
-        else:
-            t, duration, lik = float(item.t), float(item.duration_s), None
-            if not (math.isfinite(duration) and duration > 0):
-                self.bad += 1
-                return []
-        if not math.isfinite(t):
-            self.bad += 1
-            return []
         out: list[Decision] = []
-        if self.next_t is not None:
-            late = self.next_t - t
-            if late > hop / 2:
-                self.dropped += 1
-                return []
-            if -late >= hop / 2:  # silent jump forward: the skipped time is no data
-                self._gap(self.next_t, t - self.next_t, item.ready_at, out)
-        if lik is None:
-            self._gap(t, duration, item.ready_at, out)
-            return out
-        self._nodata_run = 0.0
-        self._observe(t, lik, item.ready_at)
-        self.next_t = t + hop
-        self._decide_ripe(out)
+        self._bank._push_one(self._slot, item, out)
         return out
 
     def flush(self) -> list[Decision]:
         """Decide every pending hop now (end of stream, shutdown); the chain goes on."""
         out: list[Decision] = []
-        self._decide(len(self._steps), out)
+        self._bank._decide_all(np.array([self._slot]), out)
         return out
-
-    def _observe(self, t: float, lik: np.ndarray, ready_at: float) -> None:
-        p = self.params
-        loglik = np.log(lik)
-        if self._delta is None:
-            self._delta = np.log(p.start) + loglik
-            alpha = p.start * lik
-            back = None
-        else:
-            scores = self._delta[:, None] + p.step_matrix(1)[1]
-            idx = scores.argmax(axis=0)
-            self._delta = scores[idx, np.arange(p.n_classes)] + loglik
-            alpha = (self._alpha @ p.transitions) * lik  # type: ignore[operator]
-            back = idx.tolist()
-        self._delta -= self._delta.max()  # keep scores bounded over an endless stream
-        self._alpha = alpha / alpha.sum()
-        self._steps.append(
-            _Step(t + p.offset_s, p.hop_s, _OBS, ready_at, back, lik, 1, self._alpha)
-        )
-
-    def _gap(self, t: float, duration: float, ready_at: float, out: list[Decision]) -> None:
-        p = self.params
-        self._nodata_run += duration
-        self.next_t = t + duration
-        slice_t = t + p.offset_s
-        if self._delta is None or self._nodata_run > p.bridge_s:
-            # Break the chain: nothing links the two sides of a long silence.
-            self._decide(len(self._steps), out)
-            self._delta = self._alpha = None
-            if out and out[-1].behaviour == NO_DATA and out[-1].t + out[-1].duration_s == slice_t:
-                out[-1].duration_s += duration  # one decision for one silence
-            else:
-                out.append(Decision(self.animal, slice_t, duration, NO_DATA, 0.0, ready_at))
-            return
-        hops = max(1, int(round(duration / p.hop_s)))
-        m, logm = p.step_matrix(hops)
-        scores = self._delta[:, None] + logm
-        idx = scores.argmax(axis=0)
-        self._delta = scores[idx, np.arange(p.n_classes)]
-        self._delta -= self._delta.max()
-        alpha = self._alpha @ m  # type: ignore[operator]
-        self._alpha = alpha / alpha.sum()
-        self._steps.append(
-            _Step(slice_t, duration, _GAP, ready_at, idx.tolist(), None, hops, self._alpha)
-        )
-        self._decide_ripe(out)
-
-    def _decide_ripe(self, out: list[Decision]) -> None:
-        extra = len(self._steps) - self.params.lag
-        if extra > 0:
-            self._decide(extra, out)
-
-    def _decide(self, count: int, out: list[Decision]) -> None:
-        """Decide the ``count`` oldest pending hops by tracing back from the best state now."""
-        steps = self._steps
-        if count <= 0 or self._delta is None:
-            return
-        p = self.params
-        n = len(steps)
-        state = int(self._delta.argmax())
-        beta = np.ones(p.n_classes)
-        states = [0] * n
-        conf = [0.0] * n
-        for k in range(n - 1, -1, -1):
-            s = steps[k]
-            states[k] = state
-            if k < count:
-                g = s.alpha * beta
-                conf[k] = float(g[state] / g.sum())
-            if k == 0:
-                break
-            # One step back: Viterbi pointer for the state, backward message for confidence.
-            weighted = beta if s.lik is None else beta * s.lik
-            beta = p.step_matrix(s.hops)[0] @ weighted
-            beta /= beta.sum()
-            state = s.back[state]  # type: ignore[index]
-        for k in range(count):
-            s = steps.popleft()
-            if s.kind == _GAP:
-                out.append(Decision(self.animal, s.t, s.duration_s, NO_DATA, 0.0, s.ready_at))
-            else:
-                beh = p.classes[states[k]]
-                out.append(Decision(self.animal, s.t, s.duration_s, beh, conf[k], s.ready_at))
-        if steps:
-            steps[0].back = None  # the oldest pending hop now starts the traced path
-
-    # -- persistence -------------------------------------------------------------------------
 
     def snapshot(self, full: bool = True) -> dict[str, Any]:
         """JSON-able state. ``full=False`` keeps only where the decided stream ends (tiny)."""
-        if not full:
-            decided = self._steps[0].t - self.params.offset_s if self._steps else self.next_t
-            return {"next_t": decided}
-        return {
-            "next_t": self.next_t,
-            "nodata_run": self._nodata_run,
-            "delta": _enc(self._delta),
-            "alpha": _enc(self._alpha),
-            "steps": [
-                [s.t, s.duration_s, s.kind, s.ready_at, s.back, _enc(s.lik), s.hops, _enc(s.alpha)]
-                for s in self._steps
-            ],
-        }
+        return self._bank._snapshot(self._slot, full)
 
     def restore(self, state: Mapping[str, Any]) -> None:
         """Load a :meth:`snapshot`; raise ValueError when it does not fit these parameters."""
-        c = self.params.n_classes
-        try:
-            next_t = state.get("next_t")
-            self.next_t = None if next_t is None else float(next_t)
-            self._nodata_run = float(state.get("nodata_run", 0.0))
-            self._delta = _dec(state.get("delta"), c)
-            self._alpha = _dec(state.get("alpha"), c)
-            steps = deque()
-            for t, dur, kind, ready, back, lik, hops, alpha in state.get("steps", []):
-                if back is not None and (len(back) != c or not all(0 <= b < c for b in back)):
-                    raise ValueError("back pointers do not fit the classes")
-                a = _dec(alpha, c)
-                if a is None:
-                    raise ValueError("a pending hop lacks its filtered distribution")
-                steps.append(
-                    _Step(
-                        float(t),
-                        float(dur),
-                        int(kind),
-                        float(ready),
-                        back,
-                        _dec(lik, c),
-                        int(hops),
-                        a,
-                    )
-                )
-        except (TypeError, ValueError, KeyError) as exc:
-            self._steps, self._delta, self._alpha = deque(), None, None
-            raise ValueError(f"smoother state for {self.animal} is unusable: {exc}") from exc
-        if (self._delta is None) != (self._alpha is None) or (steps and self._delta is None):
-            self._steps, self._delta, self._alpha = deque(), None, None
-            raise ValueError(f"smoother state for {self.animal} is inconsistent")
-        if steps:
-            steps[0].back = None
-        self._steps = steps
+        self._bank._restore(self._slot, state)
+
+
+def _number(x: Any) -> float:
+    """A float, or NaN for anything that is not a number (hostile input is no data)."""
+    try:
+        return float(x)
+    except (TypeError, ValueError):
+        return math.nan
 
 
 def _enc(a: np.ndarray | None) -> str | None:
@@ -418,35 +276,421 @@ def _dec(s: str | None, c: int) -> np.ndarray | None:
 
 
 class SmootherBank:
-    """One :class:`AnimalSmoother` per animal, created on first sight."""
+    """Every animal's smoother state in shared arrays, so a batch is one set of numpy calls.
 
-    def __init__(self, params: HmmParams) -> None:
+    Each animal owns a slot: the chain's scores and filter, and a ring of its pending hops.
+    :meth:`push_many` takes the common case (the next window of a running chain) for all
+    animals at once; anything else (first window, gaps, out-of-order, bad numbers) goes
+    through the same operations one animal at a time.
+    """
+
+    def __init__(self, params: HmmParams, capacity: int = 64) -> None:
+        self.handles: dict[str, AnimalSmoother] = {}
+        self._slots: dict[str, int] = {}
+        self._names: list[str] = []
+        self._alloc(params, max(1, capacity), params.lag + 2)
+
+    # -- arrays ------------------------------------------------------------------------------
+
+    def _alloc(self, params: HmmParams, cap: int, ring: int) -> None:
+        c = params.n_classes
         self.params = params
-        self.animals: dict[str, AnimalSmoother] = {}
+        self._cap, self._ring = cap, ring
+        self.delta = np.zeros((cap, c))  # log max-product scores of the chain
+        self.alpha = np.zeros((cap, c))  # forward filter
+        self.live = np.zeros(cap, bool)  # a chain is running
+        self.next_t = np.full(cap, np.nan)
+        self.nodata_run = np.zeros(cap)
+        self.head = np.zeros(cap, np.int64)  # ring position of the oldest pending hop
+        self.count = np.zeros(cap, np.int64)  # pending hops
+        self.dropped_n = np.zeros(cap, np.int64)
+        self.bad_n = np.zeros(cap, np.int64)
+        self.r_alpha = np.zeros((cap, ring, c))
+        self.r_lik = np.ones((cap, ring, c))  # flat (ones) for a bridged gap
+        self.r_back = np.zeros((cap, ring, c), np.int16)  # best predecessor of each state
+        self.r_hops = np.ones((cap, ring), np.int64)  # matrix power into the hop
+        self.r_t = np.zeros((cap, ring))  # start of the decided slice
+        self.r_dur = np.zeros((cap, ring))
+        self.r_gap = np.zeros((cap, ring), bool)
+        self.r_ready = np.zeros((cap, ring))
+
+    _PER_SLOT = ("delta", "alpha", "live", "next_t", "nodata_run", "head", "count",
+                 "dropped_n", "bad_n")  # fmt: skip
+    _RING = ("r_alpha", "r_lik", "r_back", "r_hops", "r_t", "r_dur", "r_gap", "r_ready")
+
+    def _resize(self, cap: int, ring: int) -> None:
+        """Grow the arrays (more animals, or a longer ring); pending hops keep their order."""
+        old = {k: getattr(self, k) for k in self._PER_SLOT + self._RING}
+        n, old_ring = self._cap, self._ring
+        self._alloc(self.params, cap, ring)
+        for k in self._PER_SLOT:
+            getattr(self, k)[:n] = old[k]
+        # Ring contents move to positions 0..count-1 (the oldest first).
+        pos = (old["head"][:, None] + np.arange(old_ring)[None, :]) % old_ring
+        keep = min(old_ring, ring)
+        for k in self._RING:
+            getattr(self, k)[:n, :keep] = np.take_along_axis(
+                old[k], pos.reshape(pos.shape + (1,) * (old[k].ndim - 2)), axis=1
+            )[:, :keep]
+        self.head[:n] = 0
+
+    def _new_slot(self, animal: str) -> int:
+        slot = len(self._names)
+        if slot >= self._cap:
+            self._resize(self._cap * 2, self._ring)
+        self._names.append(animal)
+        self._slots[animal] = slot
+        return slot
 
     def get(self, animal: str) -> AnimalSmoother:
-        sm = self.animals.get(animal)
-        if sm is None:
-            sm = self.animals[animal] = AnimalSmoother(animal, self.params)
-        return sm
+        h = self.handles.get(animal)
+        if h is None:
+            h = self.handles[animal] = AnimalSmoother._on(self, animal, self._new_slot(animal))
+        return h
+
+    def reset(self, animal: str) -> None:
+        """Forget an animal's chain and pending hops (its counters stay)."""
+        self._clear(self.get(animal)._slot)
+
+    def _clear(self, slot: int) -> None:
+        self.live[slot] = False
+        self.count[slot] = self.head[slot] = 0
+        self.next_t[slot] = np.nan
+        self.nodata_run[slot] = 0.0
+
+    def set_params(self, params: HmmParams) -> None:
+        """New chain parameters (a reloaded model); pending hops are kept."""
+        if params.classes != self.params.classes:
+            raise ValueError("a new model must keep the classes to keep the smoothers' state")
+        states = {s: self._snapshot(s, True) for s in range(len(self._names))}
+        counters = (self.dropped_n.copy(), self.bad_n.copy())
+        ring = max(params.lag + 2, int(self.count.max(initial=0)) + 2)
+        self._alloc(params, self._cap, ring)
+        self.dropped_n[:], self.bad_n[:] = counters
+        for s, st in states.items():
+            self._restore(s, st)
+
+    # -- the batch path ----------------------------------------------------------------------
 
     def push_many(self, items: Iterable[Posteriors | NoDataHop]) -> list[Decision]:
-        """Push a batch (any animals, each animal's items in time order); decisions in order."""
-        out: list[Decision] = []
+        """Push a batch (any animals, each animal's items in time order); decisions in order.
+
+        Decisions of one animal come in time order; animals are interleaved.
+        """
+        rounds: list[list[tuple[int, Posteriors | NoDataHop]]] = []
+        depth: dict[int, int] = {}
+        slots = self._slots
         for item in items:
-            out.extend(self.get(item.animal).push(item))
+            slot = slots.get(item.animal)
+            if slot is None:
+                slot = self.get(item.animal)._slot
+            r = depth.get(slot, 0)
+            depth[slot] = r + 1
+            if r == len(rounds):
+                rounds.append([])
+            rounds[r].append((slot, item))
+        out: list[Decision] = []
+        for rnd in rounds:  # round k holds the k-th item of each animal in the batch
+            self._round(rnd, out)
         return out
+
+    def _round(self, rnd: list[tuple[int, Posteriors | NoDataHop]], out: list[Decision]) -> None:
+        p = self.params
+        c, half = p.n_classes, p.hop_s / 2
+        live, next_t = self.live, self.next_t
+        fast: list[int] = []
+        fast_items: list[Posteriors] = []
+        slow: list[tuple[int, Posteriors | NoDataHop]] = []
+        for slot, item in rnd:
+            if (
+                type(item) is Posteriors
+                and live[slot]
+                and abs(item.t_start - next_t[slot]) < half
+                and isinstance(item.t_start, float)
+                and isinstance(item.p, np.ndarray)
+                and item.p.shape == (c,)
+                and item.p.dtype.kind == "f"
+            ):
+                fast.append(slot)
+                fast_items.append(item)
+            else:
+                slow.append((slot, item))
+        if fast:
+            post = np.array([it.p for it in fast_items], dtype=np.float64)
+            ok = p.valid_rows(post)
+            if not ok.all():
+                slow.extend((fast[i], fast_items[i]) for i in np.flatnonzero(~ok))
+                post = post[ok]
+                fast_items = [it for it, k in zip(fast_items, ok, strict=True) if k]
+                fast = [s for s, k in zip(fast, ok, strict=True) if k]
+            if fast:
+                s_arr = np.array(fast)
+                t = np.array([it.t_start for it in fast_items])
+                ready = np.array([it.ready_at for it in fast_items])
+                self._observe(s_arr, t, p.scaled_likelihood(post), ready)
+                self._decide_ripe(s_arr, out)
+        for slot, item in slow:
+            self._push_one(slot, item, out)
+
+    # -- one animal --------------------------------------------------------------------------
+
+    def _push_one(self, slot: int, item: Posteriors | NoDataHop, out: list[Decision]) -> None:
+        p = self.params
+        hop = p.hop_s
+        one = np.array([slot])
+        lik = None
+        if isinstance(item, Posteriors):
+            t, duration = _number(item.t_start), hop
+            try:
+                row = np.asarray(item.p, dtype=np.float64).reshape(1, -1)
+            except (TypeError, ValueError):
+                row = np.zeros((1, 0))
+            usable = row.shape[1] == p.n_classes and bool(p.valid_rows(row)[0])
+            if usable:
+                lik = p.scaled_likelihood(row)
+            else:
+                self.bad_n[slot] += 1
+        else:
+            t, duration = _number(item.t), _number(item.duration_s)
+            if not (math.isfinite(duration) and duration > 0):
+                self.bad_n[slot] += 1
+                return
+        if not math.isfinite(t):
+            self.bad_n[slot] += 1
+            return
+        expected = float(self.next_t[slot])
+        if not math.isnan(expected):
+            late = expected - t
+            if late > hop / 2:
+                self.dropped_n[slot] += 1
+                return
+            if -late >= hop / 2:  # silent jump forward: the skipped time is no data
+                self._gap(slot, expected, t - expected, item.ready_at, out)
+        if lik is None:
+            self._gap(slot, t, duration, item.ready_at, out)
+            return
+        self._observe(one, np.array([t]), lik, np.array([item.ready_at]))
+        self._decide_ripe(one, out)
+
+    def _gap(
+        self, slot: int, t: float, duration: float, ready_at: float, out: list[Decision]
+    ) -> None:
+        p = self.params
+        self.nodata_run[slot] += duration
+        self.next_t[slot] = t + duration
+        slice_t = t + p.offset_s
+        one = np.array([slot])
+        if not self.live[slot] or self.nodata_run[slot] > p.bridge_s:
+            # Break the chain: nothing links the two sides of a long silence.
+            self._decide_all(one, out)
+            self.live[slot] = False
+            last = out[-1] if out else None
+            if (
+                last is not None
+                and last.animal == self._names[slot]
+                and last.behaviour == NO_DATA
+                and abs(last.t + last.duration_s - slice_t) < 1e-6
+            ):
+                last.duration_s += duration  # one decision for one silence
+            else:
+                out.append(Decision(self._names[slot], slice_t, duration, NO_DATA, 0.0, ready_at))
+            return
+        hops = min(max(1, int(round(duration / p.hop_s))), p.max_bridge_hops)
+        self._step(one, np.array([hops]))
+        self._write(one, np.array([slice_t]), np.array([duration]), True, np.array([ready_at]))
+        self._decide_ripe(one, out)
+
+    # -- the operations (vectorised over distinct slots) -------------------------------------
+
+    def _step(self, s: np.ndarray, hops: np.ndarray, lik: np.ndarray | None = None) -> None:
+        """One Viterbi and forward step for slots ``s`` (``lik=None``: a flat gap step)."""
+        p = self.params
+        if (self.count[s] + 1 >= self._ring).any():
+            self._resize(self._cap, self._ring * 2)
+        if lik is not None:  # an observed hop: one step of the matrix, shared by all
+            scores = self.delta[s][:, :, None] + p.log_powers[1]
+            alpha = self.alpha[s] @ p.transitions
+        else:  # a bridged gap: each slot its own matrix power
+            scores = self.delta[s][:, :, None] + p.log_powers[hops]
+            alpha = (self.alpha[s][:, None, :] @ p.powers[hops])[:, 0, :]
+        back = scores.argmax(axis=1)  # [N, C]: the best predecessor of each state
+        delta = np.take_along_axis(scores, back[:, None, :], axis=1)[:, 0, :]
+        if lik is not None:
+            delta += np.log(lik)
+            alpha *= lik
+        fresh = ~self.live[s]
+        if fresh.any():  # a chain starts from the prior
+            delta[fresh] = np.log(p.start) + np.log(lik[fresh])  # type: ignore[index]
+            alpha[fresh] = p.start * lik[fresh]  # type: ignore[index]
+        delta -= delta.max(axis=1, keepdims=True)  # bounded over an endless stream
+        total = alpha.sum(axis=1, keepdims=True)
+        alpha = np.where(total > 0, alpha / np.where(total > 0, total, 1.0), p.start)
+        self.delta[s], self.alpha[s], self.live[s] = delta, alpha, True
+        pos = (self.head[s] + self.count[s]) % self._ring
+        self.r_back[s, pos] = back
+        self.r_hops[s, pos] = hops
+        self.r_alpha[s, pos] = alpha
+        self.r_lik[s, pos] = 1.0 if lik is None else lik
+
+    def _write(self, s: np.ndarray, t: np.ndarray, dur: np.ndarray, gap: bool, ready: np.ndarray):
+        pos = (self.head[s] + self.count[s]) % self._ring
+        self.r_t[s, pos], self.r_dur[s, pos], self.r_ready[s, pos] = t, dur, ready
+        self.r_gap[s, pos] = gap
+        self.count[s] += 1
+
+    def _observe(self, s: np.ndarray, t: np.ndarray, lik: np.ndarray, ready: np.ndarray) -> None:
+        p = self.params
+        self._step(s, np.ones(len(s), np.int64), lik)
+        self._write(s, t + p.offset_s, np.full(len(s), p.hop_s), False, ready)
+        self.nodata_run[s] = 0.0
+        self.next_t[s] = t + p.hop_s
+
+    def _decide_ripe(self, s: np.ndarray, out: list[Decision]) -> None:
+        extra = self.count[s] - self.params.lag
+        ripe = extra > 0
+        if ripe.any():
+            self._decide(s[ripe], extra[ripe], out)
+
+    def _decide_all(self, s: np.ndarray, out: list[Decision]) -> None:
+        has = self.count[s] > 0
+        if has.any():
+            self._decide(s[has], self.count[s[has]], out)
+
+    def _decide(self, s: np.ndarray, m: np.ndarray, out: list[Decision]) -> None:
+        """Decide the ``m`` oldest pending hops of each slot by tracing back from the best
+        state now; confidence is the forward filter times a backward pass over the lag."""
+        p = self.params
+        n, ring = len(s), self._ring
+        cnt, head = self.count[s], self.head[s]
+        maxc, maxm = int(cnt.max()), int(m.max())
+        rows = np.arange(n)
+        # Every pending hop of these slots, oldest first: [n, maxc, ...] (one gather each).
+        cols = (head[:, None] + np.arange(maxc)[None, :]) % ring
+        sc = s[:, None]
+        r_alpha, r_lik = self.r_alpha[sc, cols], self.r_lik[sc, cols]
+        r_back, hops = self.r_back[sc, cols], self.r_hops[sc, cols]
+        # Windows without a bridged gap (the usual case) share one matrix.
+        trans = None if (hops == 1).all() else p.powers[hops]
+        a_t = p.transitions.T
+        state = np.zeros(n, np.int64)
+        beta = np.ones((n, p.n_classes))
+        states = np.zeros((n, maxm), np.int64)
+        betas = np.ones((n, maxm, p.n_classes))
+        newest = cnt - 1
+        first_start, last_start = int(newest.min()), maxc - 1
+        with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
+            for k in range(maxc - 1, -1, -1):
+                if first_start <= k <= last_start:  # newest hop of some slots: trace from here
+                    start = newest == k
+                    state[start] = self.delta[s[start]].argmax(axis=1)
+                    beta[start] = 1.0
+                if k < maxm:
+                    states[:, k] = state
+                    betas[:, k] = beta
+                if k:  # one hop back: Viterbi pointer for the state, backward message
+                    w = beta * r_lik[:, k]
+                    beta = w @ a_t if trans is None else (trans[:, k] @ w[:, :, None])[:, :, 0]
+                    beta /= beta.sum(axis=1, keepdims=True)
+                    state = r_back[rows, k, state]
+            g = r_alpha[:, :maxm] * betas
+            conf = np.take_along_axis(g, states[:, :, None], axis=2)[:, :, 0] / g.sum(axis=2)
+        cols = cols[:, :maxm]
+        ts = self.r_t[sc, cols].tolist()
+        durs = self.r_dur[sc, cols].tolist()
+        gaps = self.r_gap[sc, cols].tolist()
+        readys = self.r_ready[sc, cols].tolist()
+        conf[~(conf >= 0.0)] = 0.0  # NaN from a degenerate backward message: no confidence
+        st, cf = states.tolist(), np.minimum(conf, 1.0).tolist()
+        names, classes = self._names, p.classes
+        for i, (slot, mi) in enumerate(zip(s.tolist(), m.tolist(), strict=True)):
+            name = names[slot]
+            for k in range(mi):
+                if gaps[i][k]:
+                    out.append(Decision(name, ts[i][k], durs[i][k], NO_DATA, 0.0, readys[i][k]))
+                else:
+                    beh = classes[st[i][k]]
+                    out.append(Decision(name, ts[i][k], durs[i][k], beh, cf[i][k], readys[i][k]))
+        self.head[s] = (head + m) % ring
+        self.count[s] = cnt - m
 
     def flush_all(self) -> list[Decision]:
         out: list[Decision] = []
-        for sm in self.animals.values():
-            out.extend(sm.flush())
+        self._decide_all(np.arange(len(self._names)), out)
         return out
 
     @property
     def dropped(self) -> int:
-        return sum(sm.dropped for sm in self.animals.values())
+        return int(self.dropped_n.sum())
 
     @property
     def bad(self) -> int:
-        return sum(sm.bad for sm in self.animals.values())
+        return int(self.bad_n.sum())
+
+    # -- persistence -------------------------------------------------------------------------
+
+    def _snapshot(self, slot: int, full: bool) -> dict[str, Any]:
+        p = self.params
+        n, ring, head = int(self.count[slot]), self._ring, int(self.head[slot])
+        nt = float(self.next_t[slot])
+        next_t = None if math.isnan(nt) else nt
+        if not full:
+            return {"next_t": float(self.r_t[slot, head]) - p.offset_s if n else next_t}
+        live = bool(self.live[slot])
+        steps = []
+        for k in range(n):
+            i = (head + k) % ring
+            gap = bool(self.r_gap[slot, i])
+            steps.append([
+                float(self.r_t[slot, i]), float(self.r_dur[slot, i]), int(gap),
+                float(self.r_ready[slot, i]), None if k == 0 else self.r_back[slot, i].tolist(),
+                None if gap else _enc(self.r_lik[slot, i]), int(self.r_hops[slot, i]),
+                _enc(self.r_alpha[slot, i]),
+            ])  # fmt: skip
+        return {
+            "next_t": next_t,
+            "nodata_run": float(self.nodata_run[slot]),
+            "delta": _enc(self.delta[slot]) if live else None,
+            "alpha": _enc(self.alpha[slot]) if live else None,
+            "steps": steps,
+        }
+
+    def _restore(self, slot: int, state: Mapping[str, Any]) -> None:
+        p = self.params
+        c, name = p.n_classes, self._names[slot]
+        try:
+            next_t = state.get("next_t")
+            next_t = math.nan if next_t is None else float(next_t)
+            nodata_run = float(state.get("nodata_run", 0.0))
+            delta, alpha = _dec(state.get("delta"), c), _dec(state.get("alpha"), c)
+            steps = []
+            for t, dur, kind, ready, back, lik, hops, a in state.get("steps", []):
+                if back is not None and (len(back) != c or not all(0 <= b < c for b in back)):
+                    raise ValueError("back pointers do not fit the classes")
+                if int(hops) < 1:
+                    raise ValueError("a hop without a transition")
+                # A gap from a longer bridge_s (older settings) steps with the longest power.
+                hops = min(int(hops), p.max_bridge_hops)
+                a = _dec(a, c)
+                if a is None:
+                    raise ValueError("a pending hop lacks its filtered distribution")
+                lik = _dec(lik, c)
+                steps.append(
+                    (float(t), float(dur), bool(kind), float(ready), back, lik, int(hops), a)
+                )
+            if (delta is None) != (alpha is None) or (steps and delta is None):
+                raise ValueError("inconsistent chain")
+        except (TypeError, ValueError, KeyError, AttributeError) as exc:
+            self._clear(slot)
+            raise ValueError(f"smoother state for {name} is unusable: {exc}") from exc
+        if len(steps) + 2 > self._ring:
+            self._resize(self._cap, len(steps) + 2)
+        self._clear(slot)
+        self.next_t[slot], self.nodata_run[slot] = next_t, nodata_run
+        if delta is not None:
+            self.delta[slot], self.alpha[slot], self.live[slot] = delta, alpha, True
+        for k, (t, dur, gap, ready, back, lik, hops, a) in enumerate(steps):
+            self.r_t[slot, k], self.r_dur[slot, k], self.r_gap[slot, k] = t, dur, gap
+            self.r_ready[slot, k], self.r_hops[slot, k], self.r_alpha[slot, k] = ready, hops, a
+            self.r_back[slot, k] = 0 if back is None else back
+            self.r_lik[slot, k] = 1.0 if lik is None else lik
+        self.count[slot] = len(steps)

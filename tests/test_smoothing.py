@@ -234,20 +234,72 @@ def test_restore_refuses_bad_state(state) -> None:
     assert sm.pending == 0
 
 
+def hostile_stream(animal: str, rng: np.random.Generator, post: np.ndarray) -> list:
+    """Windows with gaps, no-data hops, NaN rows, duplicates and late windows mixed in."""
+    items, t = [], 0.0
+    for p in post:
+        r = rng.random()
+        if r < 0.03:
+            items.append(NoDataHop(animal, t, HOP * int(rng.integers(1, 30))))
+            t = items[-1].t + items[-1].duration_s
+            continue
+        if r < 0.05:
+            t += HOP * int(rng.integers(1, 40))  # a silent jump forward
+        q = np.full(5, np.nan) if r > 0.98 else p
+        items.append(Posteriors(animal, t, q))
+        if r > 0.96:
+            items.append(Posteriors(animal, t - HOP * int(rng.integers(0, 3)), p))  # late/dup
+        t += HOP
+    return items
+
+
 def test_bank_interleaved_equals_separate() -> None:
-    _, a, _, _, post = gaussian_case(5, 200)
-    params = HmmParams.build(CLASSES, a, HOP, lag_s=30.0)
-    bank = SmootherBank(params)
-    items = []
-    for i in range(200):
-        items.append(Posteriors("a", HOP * i, post[i]))
-        items.append(Posteriors("b", HOP * i, post[199 - i]))
-    mixed = bank.push_many(items) + bank.flush_all()
-    for animal, seq in (("a", post), ("b", post[::-1])):
+    # The batch path (many animals per numpy call) must decide exactly as one animal alone.
+    rng = np.random.default_rng(5)
+    _, a, _, _, post = gaussian_case(5, 400)
+    params = HmmParams.build(CLASSES, a, HOP, lag_s=30.0, bridge_s=60.0)
+    streams = {
+        f"cow{k}": hostile_stream(f"cow{k}", rng, post[rng.permutation(400)]) for k in range(6)
+    }
+    bank = SmootherBank(params, capacity=2)  # grows while it goes
+    mixed = []
+    pos = dict.fromkeys(streams, 0)
+    while any(pos[k] < len(v) for k, v in streams.items()):
+        batch = []
+        for k, v in streams.items():  # uneven batches: 0-3 items per animal per call
+            n = int(rng.integers(0, 4))
+            batch += v[pos[k] : pos[k] + n]
+            pos[k] += n
+        mixed += bank.push_many(batch)
+    mixed += bank.flush_all()
+    for animal, items in streams.items():
         alone = AnimalSmoother(animal, params)
-        ref = run(alone, seq) + alone.flush()
+        ref = [d for it in items for d in alone.push(it)] + alone.flush()
         mine = [d for d in mixed if d.animal == animal]
-        assert [(d.t, d.behaviour) for d in mine] == [(d.t, d.behaviour) for d in ref]
+        assert [(d.t, d.duration_s, d.behaviour) for d in mine] == [
+            (d.t, d.duration_s, d.behaviour) for d in ref
+        ]
+        assert [d.confidence for d in mine] == pytest.approx([d.confidence for d in ref])
+        assert bank.handles[animal].dropped == alone.dropped > 0
+        assert bank.handles[animal].bad == alone.bad
+
+
+def test_new_parameters_keep_pending_hops() -> None:
+    # A reloaded model brings a new matrix and lag: nothing pending is lost or repeated.
+    _, a, _, _, post = gaussian_case(9, 200)
+    bank = SmootherBank(HmmParams.build(CLASSES, a, HOP, lag_s=60.0))
+    out = bank.push_many(Posteriors("cow", HOP * i, p) for i, p in enumerate(post[:100]))
+    assert bank.handles["cow"].pending == 12
+    bank.set_params(
+        HmmParams.build(CLASSES, sticky_matrix(np.random.default_rng(1)), HOP, lag_s=20.0)
+    )
+    assert bank.handles["cow"].pending == 12
+    out += bank.push_many(Posteriors("cow", HOP * i, p) for i, p in enumerate(post[100:], 100))
+    assert bank.handles["cow"].pending == 4
+    out += bank.flush_all()
+    assert [d.t for d in out] == [HOP * i for i in range(200)]
+    with pytest.raises(ValueError, match="keep the classes"):
+        bank.set_params(HmmParams.build(("a", "b"), None, HOP))
 
 
 def test_prior_division_undoes_the_classifier_prior() -> None:
