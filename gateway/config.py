@@ -140,7 +140,7 @@ class WindowsSettings(_Section):
 class SmoothingSettings(_Section):
     """Online HMM over the model's posteriors (gateway/smoothing.py); values: common practice, no source."""
 
-    lag_s: float = Field(60.0, ge=0, le=3600, description="a hop is decided this much later")
+    lag_s: float = Field(60.0, ge=0, le=600, description="a hop is decided this much later")
     bridge_s: float = Field(60.0, ge=0, le=3600, description="no-data up to this is bridged")
     prior: Literal["card", "stationary", "uniform"] = Field(
         "card", description="posteriors / prior; card: class_prior, else stationary"
