@@ -42,7 +42,8 @@ from typing import Any
 import numpy as np
 
 from .analyticsdb import animal_clause, create_tables
-from .budgets import ACTIVE_BEHAVIOURS, HOUR_COLUMNS, HOUR_S, BudgetLedger, DailyBudget
+from .budgets import ACTIVE_BEHAVIOURS, DAY_S, HOUR_COLUMNS, HOUR_S, BudgetLedger, DailyBudget
+from .lineprotocol import SCHEMA, Point, register_converter
 from .types import NO_DATA
 
 __all__ = [
@@ -59,7 +60,6 @@ CAUTION = (
     "Decision support, not a diagnosis: examine the animal and consult a veterinarian;"
     " local regulations and licensed veterinary practice prevail."
 )
-DAY_S = 86400.0
 
 
 class Rule(StrEnum):
@@ -107,7 +107,8 @@ class Finding:
     severity: float = 0.0  # bigger is worse; drives "updated"
     at: float = 0.0  # the instant the reading is for (end of its window)
     hold_s: float = 0.0  # the raise condition must hold this long before it raises
-    message: str = ""
+    message: str = ""  # what was seen, one sentence
+    advice: str = ""  # what to do, added while the alert is open
     evidence: dict[str, Any] = field(default_factory=dict)
 
 
@@ -205,6 +206,7 @@ def rumination_finding(
         f"{animal}: rumination {value:.0f} min in the last 24 h, {_pct(max(drop, 0))} below"
         f" her median of {baseline:.0f} min/day over {len(base_days)} recent days."
     )
+    f.advice = "Look at her feed intake and general condition."
     return f
 
 
@@ -277,8 +279,9 @@ def activity_finding(
     }
     f.message = (
         f"{animal}: {index:.0f} min walking in the last {window.shape[0]} h, {ratio:.1f}x her"
-        f" usual {baseline:.1f} min for these hours: possible heat."
+        f" usual {baseline:.1f} min for these hours."
     )
+    f.advice = "Possible heat: watch her for signs of estrus."
     return f
 
 
@@ -309,6 +312,7 @@ def inactivity_finding(
         "state": cursor.get("state"),
     }
     f.message = f"{animal}: no feeding, grazing or walking for {stretch:.1f} h."
+    f.advice = "Check on her: can she get up, does she eat?"
     return f
 
 
@@ -337,6 +341,7 @@ def collar_findings(cfg: Any, status: Any, track: Any, now: float) -> list[Findi
         "last_seen": status.last_seen,
     }
     f.message = f"collar {c} ({a or 'no animal'}): no frame for {silent_s / 60:.0f} min."
+    f.advice = "Check the collar is on the animal and within radio range."
     out.append(f)
     f = Finding(Rule.BATTERY_LOW, c, a, c)
     if status.battery_v is None:
@@ -353,7 +358,8 @@ def collar_findings(cfg: Any, status: Any, track: Any, now: float) -> list[Findi
             "clear_above": cfg.battery_clear_v,
             "at": status.battery_at,
         }
-        f.message = f"collar {c} ({a or 'no animal'}): battery {v:.2f} V; plan a change."
+        f.message = f"collar {c} ({a or 'no animal'}): battery {v:.2f} V."
+        f.advice = "Plan a battery change."
         out.append(f)
     out.append(rotation_finding(cfg, status, track, now))
     return out
@@ -396,8 +402,9 @@ def rotation_finding(cfg: Any, status: Any, track: Any, now: float) -> Finding:
     }
     f.message = (
         f"collar {c} ({a or 'no animal'}): turned {total:.0f} degrees about the neck for"
-        f" {hold} h or more; check its fit. Behaviour may be misread until it is refitted."
+        f" {hold} h or more."
     )
+    f.advice = "Check its fit; behaviour may be misread until it is refitted."
     return f
 
 
@@ -511,7 +518,10 @@ class AlertBook:
         self, conn: sqlite3.Connection, aid: str, f: Finding, status: str, raised: float, now: float
     ) -> Alert:
         title = TITLES[Rule(f.rule)]
-        message = f.message if status != "cleared" else f"{title} cleared. {f.message}"
+        if status == "cleared":
+            message = f"{title}: cleared. {f.message}"
+        else:
+            message = f"{f.message} {f.advice}".strip()
         ev = json.dumps(f.evidence, sort_keys=True, allow_nan=False, default=_json_default)
         if status == "raised":
             conn.execute(
@@ -679,6 +689,12 @@ class AlertEngine:
     def ensure_schema(self, conn: sqlite3.Connection) -> None:
         self.book.ensure_schema(conn)
 
+    def forget(self) -> None:
+        """Drop what is held in memory (after a rolled-back write): re-read from the store."""
+        self.book = AlertBook()
+        self._last_end.clear()
+        self._days.clear()
+
     def evaluate(
         self, conn: sqlite3.Connection, now: float, collars: Any | None = None
     ) -> list[Alert]:
@@ -749,3 +765,44 @@ class AlertEngine:
             days = self.ledger.read(conn, animal=animal, day_from=first, day_to=last)
             self._days[animal] = hit = (key, days)
         return hit[1]
+
+
+# ---------------------------------------------------------------------------------------
+# line protocol: the ``alert`` measurement (docs/line-protocol.md)
+
+# Rules judged against a fixed limit, not a baseline: their "baseline" field is that limit.
+_LIMIT_RULES = {
+    Rule.PROLONGED_INACTIVITY,
+    Rule.COLLAR_SILENT,
+    Rule.BATTERY_LOW,
+}
+
+
+def _alert_points(fact: dict[str, Any], site: str) -> list[Point]:
+    """An Alert fact as one ``alert`` point, keyed by when it was raised.
+
+    Its later transitions (updated, cleared) overwrite the same point, so InfluxDB holds
+    each alert once, in its latest state; the state leads the message.
+    """
+    ev, rule = fact.get("evidence") or {}, Rule(fact["rule"])
+    value = float(ev.get("value") or 0.0)
+    if rule in _LIMIT_RULES:
+        baseline = float(ev["threshold"])
+    elif rule is Rule.COLLAR_ROTATED:
+        value, baseline = float(ev.get("change", 0.0)), float(ev["threshold"])
+    else:
+        baseline = float(ev["baseline"])
+    change = (value - baseline) / baseline * 100.0 if baseline else 0.0
+    score = -float(ev["z"]) if "z" in ev else None
+    fields = {
+        "value": value,
+        "baseline": baseline,
+        "change_pct": change,
+        "score": score,
+        "message": f"{fact['status']}: {fact['message']} {fact.get('caution') or CAUTION}",
+    }
+    tags = {"site": site, "animal": fact["animal"] or fact["collar"], "rule": fact["rule"]}
+    return [SCHEMA["alert"].point(fact["raised_at"], tags, fields)]
+
+
+register_converter("alert", _alert_points)

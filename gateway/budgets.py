@@ -50,6 +50,8 @@ from .types import BEHAVIOURS, NO_DATA
 
 __all__ = [
     "ACTIVE_BEHAVIOURS",
+    "DAY_S",
+    "HOUR_S",
     "BudgetLedger",
     "DailyBudget",
     "DayClock",
@@ -59,6 +61,7 @@ __all__ = [
 ]
 
 HOUR_S = 3600.0
+DAY_S = 86400.0
 # Behaviours that end a stretch of inactivity (the animal is up and doing something).
 ACTIVE_BEHAVIOURS = frozenset({"grazing", "feeding", "walking"})
 # Columns of the hourly bins: the five behaviours, any other model class, and no-data.

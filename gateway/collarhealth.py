@@ -36,6 +36,7 @@ from dataclasses import dataclass, field
 from typing import Any
 
 from .analyticsdb import animal_clause, create_tables
+from .lineprotocol import SCHEMA, Point, register_converter
 from .types import CollarGravity, Frame
 
 __all__ = ["CollarHealth", "CollarStatus", "CollarTrack"]
@@ -65,6 +66,7 @@ class CollarStatus:
     battery_v: float | None
     battery_at: float | None
     roll_deg: float | None  # roll about the neck in the last hour with gravity data
+    recent_frames: int = 0  # received over the recent window
     kind: str = field(default="collar_health", init=False)
 
     @property
@@ -87,6 +89,7 @@ class CollarStatus:
             "battery_v": self.battery_v,
             "battery_at": self.battery_at,
             "roll_deg": None if self.roll_deg is None else round(self.roll_deg, 2),
+            "recent_frames": self.recent_frames,
         }
 
 
@@ -226,6 +229,7 @@ class CollarHealth:
             battery_v=tr.battery_v,
             battery_at=tr.battery_at,
             roll_deg=tr.roll_deg(h - 1, h + 1),
+            recent_frames=got,
         )
 
     def snapshot(self, now: float) -> list[CollarStatus]:
@@ -328,3 +332,19 @@ class CollarHealth:
             cond, args = animal_clause("animal", animal)
             sql += f" WHERE {cond}"
         return [CollarStatus(*r) for r in conn.execute(sql + " ORDER BY collar", args)]
+
+
+def _collar_points(fact: dict[str, Any], site: str) -> list[Point]:
+    """A CollarStatus fact as one ``collar_health`` point (docs/line-protocol.md)."""
+    tags = {"site": site, "collar": fact["collar_id"], "animal": fact["animal"] or "unassigned"}
+    fields = {
+        "frame_rate_hz": fact["frame_rate_hz"],
+        "loss": fact["loss"],
+        "battery_v": fact.get("battery_v"),
+        "last_seen": fact["last_seen"],
+        "frames": fact.get("recent_frames", 0),
+    }
+    return [SCHEMA["collar_health"].point(fact["at"], tags, fields)]
+
+
+register_converter("collar_health", _collar_points)
