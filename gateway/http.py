@@ -114,6 +114,18 @@ class _Handler(BaseHTTPRequestHandler):
         log.debug("http: " + format, *args)
 
 
+class _Server(ThreadingHTTPServer):
+    daemon_threads = True
+
+    def handle_error(self, request: Any, client_address: Any) -> None:
+        # A client that hung up mid-answer is not the gateway's problem; keep stderr clean.
+        log.debug("http: request from %s failed", client_address, exc_info=True)
+
+
+class _Server6(_Server):
+    address_family = socket.AF_INET6
+
+
 class HttpEndpoint:
     """A small threaded HTTP server for /healthz and /metrics; ``start()`` then ``stop()``."""
 
@@ -127,7 +139,7 @@ class HttpEndpoint:
     ) -> None:
         self.health, self.registry = health, registry
         self.bind, self.port = bind, port
-        self._server: ThreadingHTTPServer | None = None
+        self._server: _Server | None = None
         self._thread: threading.Thread | None = None
 
     @classmethod
@@ -145,18 +157,13 @@ class HttpEndpoint:
         """Bind and serve in a thread; port 0 picks a free port (then read ``.port``)."""
         handler = type("Handler", (_Handler,), {"endpoint": self})
         try:
-            server_cls = ThreadingHTTPServer
-            if ":" in self.bind:
-                server_cls = type(
-                    "Server6", (ThreadingHTTPServer,), {"address_family": socket.AF_INET6}
-                )
+            server_cls = _Server6 if ":" in self.bind else _Server
             self._server = server_cls((self.bind, self.port), handler)
         except OSError as exc:
             raise ConfigError(
                 f"http: cannot listen on {self.bind}:{self.port} ({exc.strerror}); pick another"
                 " http.port or set http.enabled = false"
             ) from exc
-        self._server.daemon_threads = True
         self.port = int(self._server.server_address[1])
         if not _is_loopback(self.bind):
             log.warning(

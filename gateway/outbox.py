@@ -755,11 +755,11 @@ class Forwarder:
             self._deliver(batch[:mid])
             self._deliver(batch[mid:])
             return
-        self.outbox.ack(self._conn, self.name, batch)
         now = self.outbox.clock()
         latency = self.metrics.latency.labels(sink=self.name)
         for r in batch:
             latency.observe(max(0.0, now - r.at))
+        self.outbox.ack(self._conn, self.name, batch)
 
     def _set_aside(self, record: Record, exc: SinkRejected) -> None:
         assert self._conn is not None

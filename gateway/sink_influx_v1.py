@@ -144,7 +144,8 @@ class InfluxV1Sink:
             with self._opener.open(req, timeout=self.timeout_s) as resp:
                 resp.read(65536)
         except urllib.error.HTTPError as exc:
-            detail = exc.read(4096) if exc.fp is not None else b""
+            with exc:  # the error holds the response and its socket
+                detail = exc.read(4096) if exc.fp is not None else b""
             raise http_failure(
                 exc.code,
                 detail or exc.headers.get("X-Influxdb-Error", ""),

@@ -14,12 +14,12 @@ import signal
 import subprocess
 import sys
 import threading
-import time
 import urllib.parse
 import urllib.request
 from pathlib import Path
 
 import pytest
+from polling import wait_for
 
 from gateway.outbox import Outbox, Outputs
 from gateway.sink_influx_v1 import InfluxV1Sink
@@ -76,15 +76,6 @@ def stored_keys(url: str) -> tuple[set, int]:
                 keys.add((m, r["animal"], r["behaviour"], r["time"]))
                 points += 1
     return keys, points
-
-
-def wait_for(cond, timeout_s: float, step_s: float = 0.1) -> bool:
-    deadline = time.monotonic() + timeout_s
-    while time.monotonic() < deadline:
-        if cond():
-            return True
-        threading.Event().wait(step_s)
-    return cond()
 
 
 def test_database_outage_while_the_herd_produces_loses_and_doubles_nothing(
