@@ -109,6 +109,8 @@ class Store:
     """A Boutline store file. Use :meth:`open`; thread-safe (one writer lock)."""
 
     def __init__(self, conn: sqlite3.Connection, path: Path, readonly: bool, backlog_max: int):
+        self.retention_s: float | None = None
+        self._pruned_at = -math.inf  # data time of the last automatic prune
         self._conn = conn
         self.path = path
         self.readonly = readonly
@@ -133,11 +135,14 @@ class Store:
         checkpoint_pages: int = 1000,
         max_mb: float | None = None,
         backlog_max: int = 100_000,
+        retention_days: float | None = None,
     ) -> Store:
         """Open (creating when needed) the store at ``path``, a file or a data directory.
 
         ``check`` runs SQLite's quick integrity check (one pass over the file). ``max_mb``
         caps the file size: past it writes raise StoreFullError, as a full disk does.
+        ``retention_days``: once a day (by the data's own clock) bouts and no-data stretches
+        that ended longer ago are deleted inside a write; None keeps everything.
         """
         p = Path(path).expanduser()
         if p.is_dir():
@@ -169,6 +174,12 @@ class Store:
                 conn.execute("PRAGMA synchronous = NORMAL")  # durable at checkpoints, safe in WAL
                 conn.execute(f"PRAGMA wal_autocheckpoint = {int(checkpoint_pages)}")
             store = cls(conn, p, readonly, backlog_max)
+            if retention_days is not None:
+                if not (math.isfinite(retention_days) and retention_days > 0):
+                    raise StoreError(
+                        f"retention_days must be a positive number, not {retention_days!r}"
+                    )
+                store.retention_s = retention_days * 86400.0
             store._init_schema()
             if max_mb is not None:
                 store.set_max_mb(max_mb)
@@ -264,7 +275,8 @@ class Store:
                 return
             try:
                 with self._transaction("writing events") as c:
-                    self._write(c, batch, all_states)
+                    newest = self._write(c, batch, all_states)
+                    pruned = self._auto_prune(c, newest)
                     for fn in self._listeners:
                         try:
                             fn(c, batch)
@@ -279,6 +291,15 @@ class Store:
                 self._keep(batch, all_states)
                 raise
             self._backlog, self._backlog_states = [], {}
+            if pruned is not None:
+                self._pruned_at = pruned
+
+    def _auto_prune(self, c: sqlite3.Connection, newest: float) -> float | None:
+        """Delete what is past retention, at most once a day of data time; the time or None."""
+        if self.retention_s is None or not newest - self._pruned_at >= 86400.0:
+            return None
+        _delete_before(c, newest - self.retention_s)
+        return newest
 
     @contextmanager
     def _transaction(self, doing: str) -> Iterator[sqlite3.Connection]:
@@ -322,7 +343,8 @@ class Store:
     def _animal(self, c: sqlite3.Connection, name: str) -> int:
         return self._id(c, "animals", self._animal_ids, name)
 
-    def _write(self, c: sqlite3.Connection, batch: list[Any], states: Mapping[str, Any]) -> None:
+    def _write(self, c: sqlite3.Connection, batch: list[Any], states: Mapping[str, Any]) -> float:
+        """Insert a batch; return the newest event time in it (-inf when none)."""
         bouts, no_data, current, seen = [], [], {}, {}
         for e in batch:
             if isinstance(e, BoutClosed):
@@ -370,6 +392,7 @@ class Store:
                 " ON CONFLICT(animal) DO UPDATE SET tracker=excluded.tracker",
                 rows,
             )
+        return max((hi for _, hi in seen.values()), default=-math.inf)
 
     def replace_assignments(self, rows: Iterable[tuple[str, str, float, float | None]]) -> None:
         """Replace every collar assignment: ``(collar, animal, valid_from, valid_to or None)``."""
@@ -380,12 +403,18 @@ class Store:
             for _, animal, _, _ in rows:
                 self._animal(c, animal)
 
+    def counts(self) -> dict[str, int]:
+        """How many animals, bouts and no-data stretches the store holds."""
+        (row,) = self._query(
+            "SELECT (SELECT count(*) FROM animals), (SELECT count(*) FROM bouts),"
+            " (SELECT count(*) FROM no_data)"
+        )
+        return dict(zip(("animals", "bouts", "no_data"), row, strict=True))
+
     def prune(self, before: float) -> int:
         """Delete bouts and no-data stretches that ended before ``before``; return how many."""
         with self._lock, self._transaction("pruning") as c:
-            n = c.execute("DELETE FROM bouts WHERE end < ?", (before,)).rowcount
-            n += c.execute("DELETE FROM no_data WHERE end < ?", (before,)).rowcount
-        return n
+            return _delete_before(c, before)
 
     # -- reading -----------------------------------------------------------------------------
 
@@ -478,6 +507,11 @@ class Store:
         """Bytes on disk: the main file plus the WAL."""
         wal = self.path.with_name(self.path.name + "-wal")
         return sum(f.stat().st_size for f in (self.path, wal) if f.exists())
+
+
+def _delete_before(c: sqlite3.Connection, before: float) -> int:
+    n = c.execute("DELETE FROM bouts WHERE end < ?", (before,)).rowcount
+    return n + c.execute("DELETE FROM no_data WHERE end < ?", (before,)).rowcount
 
 
 def _finite(*xs: float) -> bool:

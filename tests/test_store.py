@@ -354,3 +354,19 @@ def test_storage_for_100_animals_for_30_days_is_well_under_200_mb(tmp_path: Path
     assert size < 50e6, size
     assert per_animal_day < 16_000, per_animal_day
     assert json.dumps(snapshot)  # the snapshot is plain JSON
+
+
+def test_retention_prunes_by_the_data_clock_once_a_day(tmp_path: Path) -> None:
+    day = 86400.0
+    with Store.open(tmp_path, retention_days=10) as store:
+        # Old data replayed: nothing is pruned against the wall clock.
+        store.write_events(day_of_events("cow1", 1e6))
+        assert store.counts() == {"animals": 1, "bouts": 2, "no_data": 1}
+        store.write_events(day_of_events("cow1", 1e6 + 5 * day))
+        assert store.counts()["bouts"] == 4
+        # Eleven days of data later, the first day is past retention and goes.
+        store.write_events(day_of_events("cow1", 1e6 + 11 * day))
+        assert [b.start for b in store.bouts()][0] == 1e6 + 5 * day
+        assert store.counts() == {"animals": 1, "bouts": 4, "no_data": 2}
+    with pytest.raises(StoreError, match="retention_days"):
+        Store.open(tmp_path, retention_days=0)
