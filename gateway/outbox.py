@@ -45,6 +45,7 @@ import math
 import random
 import signal
 import sqlite3
+import sys
 import threading
 import time
 from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
@@ -988,7 +989,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     try:
         outputs = Outputs.from_settings(load_settings(args.config), args.db)
     except BoutlineError as exc:
-        print(f"Error: {exc}")
+        print(f"Error: {exc}", file=sys.stderr)
         return 1
     stop = threading.Event()
     for sig in (signal.SIGTERM, signal.SIGINT):

@@ -298,3 +298,52 @@ def test_records_are_what_sinks_get():
     r = Record(1, "bout_closed", 0.0, {"kind": "bout_closed"})
     with pytest.raises(AttributeError):
         r.id = 2  # type: ignore[misc]
+
+
+def test_sinks_follow_the_settings(db):
+    from gateway.config import Settings
+    from gateway.outbox import Outputs, sinks_from_settings
+    from gateway.sink_influx_v1 import InfluxV1Sink
+    from gateway.sink_influx_v2 import InfluxV2Sink
+    from gateway.sink_mqtt import MqttSink
+
+    (only,) = sinks_from_settings(Settings())  # defaults: MQTT out on, InfluxDB off
+    assert isinstance(only[0], MqttSink) and only[1]["flush_interval_s"] == 0.0
+    s = Settings.model_validate(
+        {"influx": {"enabled": True, "api": "v1", "batch_size": 7, "flush_interval_s": 2.0},
+         "outputs": {"mqtt": False}}
+    )  # fmt: skip
+    ((sink, opts),) = sinks_from_settings(s)
+    assert isinstance(sink, InfluxV1Sink) and opts["batch_size"] == 7
+    assert opts["flush_interval_s"] == 2.0 and opts["retry_max_s"] == 300.0
+    s2 = Settings.model_validate({"influx": {"enabled": True}, "outputs": {"mqtt": False}})
+    assert isinstance(sinks_from_settings(s2)[0][0], InfluxV2Sink)
+    outputs = Outputs.from_settings(s2, db)
+    assert outputs.outbox.sinks == ("influx",) and [f.name for f in outputs.forwarders] == [
+        "influx"
+    ]
+    outputs.stop()
+
+
+@pytest.mark.parametrize(
+    ("kwargs", "message"),
+    [
+        ({"url": "ftp://db:21"}, "not an http"),
+        ({"url": "http://"}, "not an http"),
+        ({"database": ""}, "influx.database is empty"),
+    ],
+)
+def test_bad_sink_settings_are_config_errors(kwargs, message):
+    from gateway.errors import ConfigError
+    from gateway.sink_influx_v1 import InfluxV1Sink
+
+    with pytest.raises(ConfigError, match=message):
+        InfluxV1Sink(**{"url": "http://127.0.0.1:8086", "database": "d", "site": "s", **kwargs})
+
+
+def test_standalone_forwarder_refuses_a_missing_store(tmp_path, capsys):
+    from gateway.outbox import main
+
+    assert main(["--db", str(tmp_path / "none.db")]) == 1
+    out = capsys.readouterr().err
+    assert out.startswith("Error: store") and "does not exist" in out
