@@ -14,7 +14,7 @@ from polling import wait_for
 from gateway.errors import SinkRejected, SinkUnavailable
 from gateway.outbox import Outbox, Outputs, Record, fact_of
 from gateway.servers import free_port, start_mosquitto
-from gateway.sink_mqtt import MqttSink, Topics, animal_segment, messages_for
+from gateway.sink_mqtt import MqttSink
 from gateway.store import Store
 from gateway.types import BoutClosed, StateChanged
 
@@ -95,32 +95,3 @@ def test_broker_restart_facts_wait_in_the_outbox_and_arrive_after(tmp_path, mosq
         outputs.stop()
     assert len(got) == 30
     assert json.loads(got["barn/s/animals/cow-7/state"])["since"] == T + 7
-
-
-def test_topics_and_payloads_without_a_broker():
-    tp = Topics("barn", "home-farm", qos=0, state_retained=False)
-    (m,) = messages_for(fact_of(StateChanged("cow 17/b", "resting", T, 0.5, "walking")), tp)
-    assert m.topic == "barn/home-farm/animals/cow%2017%2Fb/state"
-    assert (m.qos, m.retain) == (0, False)
-    assert json.loads(m.payload) == {
-        "site": "home-farm", "animal": "cow 17/b", "behaviour": "resting", "since": T,
-        "since_utc": "2026-01-01T00:00:00.000Z", "confidence": 0.5, "previous": "walking",
-    }  # fmt: skip
-    (alert,) = messages_for({"kind": "gateway_alert", "cause": "outbox_full", "t": T,
-                             "message": "dropped 3", "dropped": 3}, tp)  # fmt: skip
-    body = json.loads(alert.payload)
-    assert alert.qos == 1 and body["scope"] == "gateway" and "caution" not in body
-    assert messages_for({"kind": "daily_budget"}, tp) == []  # not published over MQTT
-    with pytest.raises(ValueError, match="empty"):
-        animal_segment("")
-    nan = fact_of(StateChanged("c", "resting", T, float("nan")))
-    with pytest.raises(ValueError):
-        messages_for(nan, tp)
-
-
-def test_unpublishable_facts_are_rejected_for_bisecting():
-    sink = MqttSink(host="127.0.0.1", port=1, site="s")
-    nan = fact_of(StateChanged("c", "resting", T, float("nan")))
-    with pytest.raises(SinkRejected) as info:
-        sink.write([Record(7, "state_changed", T, nan)])
-    assert info.value.cause == "unconvertible" and "fact 7" in str(info.value)
