@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import getpass
 import json
 import subprocess
 from pathlib import Path
@@ -35,7 +34,7 @@ def mosquitto_auth(tmp_path):
         capture_output=True,
     )
     (work / "passwd").chmod(0o600)
-    srv = start_mosquitto(work, SERVERS / "mosquitto-auth.conf", user=getpass.getuser())
+    srv = start_mosquitto(work, SERVERS / "mosquitto-auth.conf")
     yield srv
     srv.stop()
 
