@@ -51,6 +51,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from .config import LimitsSettings, WindowsSettings
+from .model import Model
 from .telemetry import Telemetry
 from .types import Frame, NoDataHop, WindowBatch
 from .wire import Reason, Rejection
@@ -165,20 +167,29 @@ class Windows:
         self._max_rx = 0.0  # latest receive time of any accepted frame
 
     @classmethod
-    def for_model(cls, model: object, windows: object, limits: object, **kw: object) -> Windows:
+    def for_model(
+        cls,
+        model: Model,
+        windows: WindowsSettings,
+        limits: LimitsSettings,
+        *,
+        speed: float | None = None,
+        telemetry: Telemetry | None = None,
+    ) -> Windows:
         """Build from a Model and the ``[windows]`` / ``[limits]`` settings sections."""
         return cls(
-            sample_rate_hz=model.sample_rate_hz,  # type: ignore[attr-defined]
-            window_len=model.window_len,  # type: ignore[attr-defined]
-            hop_len=model.hop_len,  # type: ignore[attr-defined]
-            max_missing=windows.max_missing,  # type: ignore[attr-defined]
-            reorder_s=windows.reorder_s,  # type: ignore[attr-defined]
-            buffer_s=windows.buffer_s,  # type: ignore[attr-defined]
-            clock_future_s=windows.clock_future_s,  # type: ignore[attr-defined]
-            clock_past_s=windows.clock_past_s,  # type: ignore[attr-defined]
-            clock_rule=windows.clock_rule,  # type: ignore[attr-defined]
-            max_frame_rate_hz=limits.max_frame_rate_hz,  # type: ignore[attr-defined]
-            **kw,  # type: ignore[arg-type]
+            sample_rate_hz=model.sample_rate_hz,
+            window_len=model.window_len,
+            hop_len=model.hop_len,
+            max_missing=windows.max_missing,
+            reorder_s=windows.reorder_s,
+            buffer_s=windows.buffer_s,
+            clock_future_s=windows.clock_future_s,
+            clock_past_s=windows.clock_past_s,
+            clock_rule=windows.clock_rule,
+            max_frame_rate_hz=limits.max_frame_rate_hz,
+            speed=speed,
+            telemetry=telemetry,
         )
 
     # ------------------------------------------------------------------ frames in
