@@ -325,6 +325,8 @@ class HerdTracker:
         self._crit = {c: b.criterion_s(c) for c in classes}
         self.bank = SmootherBank(params)
         self.segmenters: dict[str, BoutSegmenter] = {}
+        self._evented: set[str] = set()  # animals with events since the last commit snapshot
+        self._cursor = 0  # round-robin position of commit_snapshot's refresh share
 
     @property
     def params(self) -> HmmParams:
@@ -369,7 +371,10 @@ class HerdTracker:
         segs = self.segmenters
         for d in decided:
             seg = segs.get(d.animal) or self._segmenter(d.animal)
-            out.extend(seg.push(d))
+            evs = seg.push(d)
+            if evs:
+                out.extend(evs)
+                self._evented.add(d.animal)
         if decisions is not None:
             decisions.extend(decided)
         return out
@@ -434,6 +439,26 @@ class HerdTracker:
                     "bouts": self._segmenter(a).snapshot(),
                 }
         return out
+
+    def commit_snapshot(self, refresh_every: int = 60) -> dict[str, dict[str, Any]]:
+        """Light snapshots to write with a commit: every animal that had an event since the
+        last call, plus a rotating share of the others so each is refreshed at least every
+        ``refresh_every`` calls.
+
+        The first part is what keeps a crash from counting a bout twice (the snapshot and the
+        events that changed it commit together); between events a snapshot only advances its
+        running sums, so an older one loses at most that much time, never a bout.
+        """
+        names = self.bank._names
+        take = set(self._evented)
+        self._evented.clear()
+        if names:
+            share = -(-len(names) // max(1, refresh_every))
+            start = self._cursor % len(names)
+            take.update(names[start : start + share])
+            take.update(names[: max(0, start + share - len(names))])
+            self._cursor = start + share
+        return self.snapshot(take)
 
     def restore(self, states: Mapping[str, Mapping[str, Any]]) -> list[str]:
         """Load snapshots; return the animals whose state was unusable (they start afresh)."""

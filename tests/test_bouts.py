@@ -379,3 +379,21 @@ def test_tracker_restore_skips_garbage_per_animal() -> None:
     bad = fresh.restore({**good, "x": {"v": 99}, "y": "nonsense", "z": {"v": 1, "smoother": {}}})
     assert sorted(bad) == ["x", "y", "z"]
     assert fresh.snapshot(["ok"]) == good
+
+
+def test_commit_snapshot_takes_evented_animals_and_a_rotating_share() -> None:
+    herd = HerdTracker(CLASSES, sticky(), HOP)
+    names = [f"cow{k:02d}" for k in range(10)]
+    calm = np.array([0.02, 0.02, 0.02, 0.9, 0.04])
+    herd.push_many(Posteriors(c, HOP * i, calm) for i in range(40) for c in names)
+    first = herd.commit_snapshot(refresh_every=5)
+    assert set(first) == set(names)  # everyone's first bout began: all had an event
+    seen: list[set[str]] = []
+    for _ in range(5):  # nothing happens: two animals per call, each once in five calls
+        seen.append(set(herd.commit_snapshot(refresh_every=5)))
+    assert all(len(s) == 2 for s in seen)
+    assert set().union(*seen) == set(names)
+    walk = np.array([0.02, 0.02, 0.02, 0.04, 0.9])
+    herd.push_many(Posteriors("cow03", HOP * i, walk) for i in range(40, 80))
+    # cow03 walked (an event); cow02 is next in the rotation (one of ten per call now).
+    assert set(herd.commit_snapshot(refresh_every=1000)) == {"cow02", "cow03"}

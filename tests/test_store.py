@@ -253,13 +253,15 @@ def stream(n: int, seed: int) -> list[Posteriors]:
     return items
 
 
-def run_with_store(tmp: Path, items: list, *, crash_at: int | None, resume_at: int, full: bool):
+def run_with_store(
+    tmp: Path, items: list, *, crash_at: int | None, resume_at: int, full: bool, refresh: int = 1
+):
     store = Store.open(tmp)
     herd = HerdTracker(CLASSES, None, 5.0)
     cut = len(items) if crash_at is None else crash_at
-    for i in range(0, cut, 300):  # one commit per 300 windows
+    for i in range(0, cut, 300):  # one commit per 300 windows (100 per cow)
         ev = herd.push_many(items[i : min(i + 300, cut)])
-        store.write_events(ev, herd.snapshot({e.animal for e in ev} | set("abc")))
+        store.write_events(ev, herd.commit_snapshot(refresh_every=refresh))
     if crash_at is not None:
         if full:  # clean shutdown
             store.write_states(herd.snapshot(full=True))
@@ -271,7 +273,7 @@ def run_with_store(tmp: Path, items: list, *, crash_at: int | None, resume_at: i
         rest = items[resume_at:]
         for i in range(0, len(rest), 300):
             ev = herd.push_many(rest[i : i + 300])
-            store.write_events(ev, herd.snapshot({e.animal for e in ev}))
+            store.write_events(ev, herd.commit_snapshot(refresh_every=refresh))
     store.write_events(herd.close_all())
     bouts = store.bouts()
     store.close()
@@ -285,19 +287,24 @@ def test_clean_restart_mid_bout_matches_an_uninterrupted_run(tmp_path: Path) -> 
     assert got == ref
 
 
-def test_crash_mid_bout_loses_no_bout_and_counts_none_twice(tmp_path: Path) -> None:
+@pytest.mark.parametrize("refresh", [1, 4])
+def test_crash_mid_bout_loses_no_bout_and_counts_none_twice(tmp_path: Path, refresh: int) -> None:
     items = stream(3000, seed=2)
     ref = run_with_store(tmp_path / "ref", items, crash_at=None, resume_at=0, full=False)
     # Crash after 4500 windows; the gateway is back 2 minutes (24 windows per cow) later.
-    got = run_with_store(tmp_path / "got", items, crash_at=4500, resume_at=4500 + 72, full=False)
+    got = run_with_store(
+        tmp_path / "got", items, crash_at=4500, resume_at=4500 + 72, full=False, refresh=refresh
+    )
     for animal in "abc":
         mine = [b for b in got if b.animal == animal]
         for x, y in zip(mine, mine[1:], strict=False):
             assert x.end <= y.start  # no overlap, so no time counted twice
         theirs = [b for b in ref if b.animal == animal]
         total = sum(b.duration_s for b in mine)
-        # At most the outage plus the lost lag window (60 s) is missing per animal.
-        assert sum(b.duration_s for b in theirs) - total <= 24 * 5.0 + 60.0 + 1e-6
+        # Missing at most: the outage, the lag window (60 s), and the windows since the animal's
+        # last snapshot (up to `refresh` commits of 100 windows each).
+        lost = 24 * 5.0 + 60.0 + refresh * 100 * 5.0
+        assert sum(b.duration_s for b in theirs) - total <= lost + 1e-6
         assert abs(len(mine) - len(theirs)) <= 1  # the bout in progress survived the crash
 
 
