@@ -294,6 +294,8 @@ def inactivity_finding(
         return _not_ready(f, "the collar is silent")
     if cursor is None or cursor.get("inactive_since") is None:
         return _not_ready(f, "no closed bout yet")
+    if cursor.get("state") == NO_DATA:
+        return _not_ready(f, "no data at the moment")
     if cursor.get("state") in ACTIVE_BEHAVIOURS and (cursor.get("state_since") or 0) >= (
         cursor["inactive_since"] or 0
     ):

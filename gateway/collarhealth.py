@@ -201,7 +201,7 @@ class CollarHealth:
                 del tr.roll_hours[old]
 
     def _trim(self, tr: CollarTrack, now: float) -> None:
-        first = int((now - self.window_s) // _BUCKET_S)
+        first = int(now // _BUCKET_S) - int(self.window_s // _BUCKET_S)
         for k in [k for k in tr.recent if k < first]:
             del tr.recent[k]
 
@@ -210,10 +210,12 @@ class CollarHealth:
         if tr is None or tr.frames == 0 and not tr.roll_hours:
             return None
         self._trim(tr, now)
-        lo = int((now - self.window_s) // _BUCKET_S)
-        got = sum(v[0] for k, v in tr.recent.items() if k >= lo)
-        lost = sum(v[1] for k, v in tr.recent.items() if k >= lo)
-        span = min(self.window_s, max(now - tr.first_seen, _BUCKET_S)) if tr.frames else 0.0
+        # whole buckets after ``lo`` up to the one in progress
+        lo = int(now // _BUCKET_S) - int(self.window_s // _BUCKET_S)
+        got = sum(v[0] for k, v in tr.recent.items() if k > lo)
+        lost = sum(v[1] for k, v in tr.recent.items() if k > lo)
+        start = max((lo + 1) * _BUCKET_S, tr.first_seen)
+        span = max(now - start, 1.0) if tr.frames else 0.0
         h = int(now // HOUR_S)
         return CollarStatus(
             collar_id=tr.collar_id,
