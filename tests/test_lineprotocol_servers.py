@@ -6,12 +6,10 @@ are the references here: what they read back is the truth the escaping must meet
 
 from __future__ import annotations
 
-import json
-import urllib.parse
-import urllib.request
 import uuid
 
 import pytest
+from influxhttp import create_database, export, http, rows
 
 from gateway.lineprotocol import Point, encode
 
@@ -47,26 +45,12 @@ def _points(run: str) -> list[Point]:
     return pts
 
 
-def _http(url: str, data: bytes | None = None) -> bytes:
-    req = urllib.request.Request(url, data=data, method="POST" if data is not None else "GET")
-    with urllib.request.urlopen(req, timeout=10) as r:
-        return r.read()
-
-
 def test_influxdb1_reads_back_every_name_unchanged(influxdb1):
     db = f"esc_{uuid.uuid4().hex[:8]}"
-    _http(
-        f"{influxdb1.url}/query", urllib.parse.urlencode({"q": f'CREATE DATABASE "{db}"'}).encode()
-    )
+    create_database(influxdb1.url, db)
     points = _points("r1")
-    _http(f"{influxdb1.url}/write?db={db}&precision=ms", encode(points, "v1"))
-    q = urllib.parse.urlencode({"db": db, "q": "SELECT * FROM /.*/", "epoch": "ms"})
-    series = json.loads(_http(f"{influxdb1.url}/query?{q}"))["results"][0]["series"]
-    got = {}
-    for s in series:
-        for row in s["values"]:
-            cols = {c: v for c, v in zip(s["columns"], row, strict=True) if v is not None}
-            got[(s["name"], cols.pop("time"))] = cols
+    http(f"{influxdb1.url}/write?db={db}&precision=ms", encode(points, "v1"))
+    got = {(m, t): cols for m, t, cols in rows(influxdb1.url, db)}
     want = {(p.measurement, p.time_ms): {**p.tags, **p.fields} for p in points}
     assert got == want
 
@@ -74,12 +58,9 @@ def test_influxdb1_reads_back_every_name_unchanged(influxdb1):
 def test_victoria_reads_back_every_name_unchanged(victoria):
     run = uuid.uuid4().hex
     points = _points(run)
-    _http(f"{victoria.url}/api/v2/write?org=o&bucket=b&precision=ms", encode(points, "v2"))
-    _http(f"{victoria.url}/internal/force_flush")
-    q = urllib.parse.urlencode({"match[]": f'{{run="{run}"}}'})
+    http(f"{victoria.url}/api/v2/write?org=o&bucket=b&precision=ms", encode(points, "v2"))
     got = {}
-    for line in _http(f"{victoria.url}/api/v1/export?{q}").splitlines():
-        row = json.loads(line)
+    for row in export(victoria.url, f'{{run="{run}"}}'):
         labels = row["metric"]
         got[(labels.pop("__name__"), row["timestamps"][0])] = (labels, row["values"][0])
     for p in points:

@@ -7,7 +7,6 @@ loopback; unknown databases and bad values go to the real InfluxDB 1.6.
 
 from __future__ import annotations
 
-import json
 import logging
 import urllib.parse
 import urllib.request
@@ -15,6 +14,7 @@ import uuid
 
 import pytest
 from httppeer import Answer, ScriptedPeer
+from influxhttp import create_database, rows
 from polling import wait_for
 
 from gateway.errors import SinkRejected, SinkUnavailable
@@ -250,13 +250,7 @@ def test_bad_points_are_bisected_out_and_the_rest_delivered(outbox, caplog):
 @pytest.mark.integration
 def test_unwritable_facts_are_set_aside_and_the_rest_reaches_influxdb(outbox, influxdb1):
     db = f"bis_{uuid.uuid4().hex[:8]}"
-    urllib.request.urlopen(
-        urllib.request.Request(
-            f"{influxdb1.url}/query",
-            urllib.parse.urlencode({"q": f"CREATE DATABASE {db}"}).encode(),
-        ),
-        timeout=10,
-    ).close()
+    create_database(influxdb1.url, db)
     facts = [
         StateChanged("cow-1", "grazing", T, 0.9),
         StateChanged("cow-2", "grazing", T, float("nan")),  # NaN cannot be written
@@ -268,10 +262,10 @@ def test_unwritable_facts_are_set_aside_and_the_rest_reaches_influxdb(outbox, in
                    flush_interval_s=0.0)  # fmt: skip
     outbox.put(facts)
     fw.step()
-    q = urllib.parse.urlencode({"db": db, "q": "SELECT confidence, animal FROM animal_state"})
-    with urllib.request.urlopen(f"{influxdb1.url}/query?{q}", timeout=10) as r:
-        rows = json.loads(r.read())["results"][0]["series"][0]["values"]
-    assert sorted((a, c) for _, c, a in rows) == [("cow-1", 0.9), ("cow-3", 0.7), ("cow-4", 0.8)]
+    got = rows(influxdb1.url, db, "SELECT confidence, animal FROM animal_state")
+    assert sorted((c["animal"], c["confidence"]) for _, _, c in got) == [
+        ("cow-1", 0.9), ("cow-3", 0.7), ("cow-4", 0.8),
+    ]  # fmt: skip
     rejected = outbox.rejected("influx")
     assert [(k, c) for _, k, c, _ in rejected] == [
         ("state_changed", "unconvertible"),
@@ -300,13 +294,7 @@ def test_unknown_database_is_one_line_at_start_and_delivery_follows_its_creation
         assert "database not found" in problems[0] and f'CREATE DATABASE "{db}"' in problems[0]
         outputs.outbox.put(bouts(7))
         assert outputs.status()["influx"]["backlog"] == 7
-        urllib.request.urlopen(
-            urllib.request.Request(
-                f"{influxdb1.url}/query",
-                urllib.parse.urlencode({"q": f"CREATE DATABASE {db}"}).encode(),
-            ),
-            timeout=10,
-        ).close()
+        create_database(influxdb1.url, db)
         # the background retry (at most 0.2 s apart here) finds it
         assert wait_for(lambda: outputs.status()["influx"]["backlog"] == 0, 10)
         assert outputs.status()["influx"]["state"] == "ok"

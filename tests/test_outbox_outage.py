@@ -8,17 +8,15 @@ point counts equal the fact counts (nothing missing, nothing doubled).
 
 from __future__ import annotations
 
-import json
 import os
 import signal
 import subprocess
 import sys
 import threading
-import urllib.parse
-import urllib.request
 from pathlib import Path
 
 import pytest
+from influxhttp import create_database, rows
 from polling import wait_for
 
 from gateway.outbox import Outbox, Outputs
@@ -53,36 +51,19 @@ def expected_keys(events) -> set:
     }  # fmt: skip
 
 
-def _query(url: str, q: str) -> dict:
-    params = urllib.parse.urlencode({"db": DB, "q": q, "epoch": "ms"})
-    with urllib.request.urlopen(f"{url}/query?{params}", timeout=10) as r:
-        return json.loads(r.read())["results"][0]
-
-
-def create_db(url: str) -> None:
-    body = urllib.parse.urlencode({"q": f"CREATE DATABASE {DB}"}).encode()
-    urllib.request.urlopen(urllib.request.Request(f"{url}/query", body), timeout=10).close()
-
-
 def stored_keys(url: str) -> tuple[set, int]:
     """Keys read back and the number of points they came from."""
-    keys, points = set(), 0
-    for m in ("animal_state", "bout"):
-        res = _query(url, f'SELECT "confidence", "duration_s", animal, behaviour FROM "{m}"')
-        for s in res.get("series", []):
-            cols = s["columns"]
-            for row in s["values"]:
-                r = dict(zip(cols, row, strict=True))
-                keys.add((m, r["animal"], r["behaviour"], r["time"]))
-                points += 1
-    return keys, points
+    got = rows(
+        url, DB, 'SELECT "confidence", "duration_s", animal, behaviour FROM /^(animal_state|bout)$/'
+    )
+    return {(m, c["animal"], c["behaviour"], t) for m, t, c in got}, len(got)
 
 
 def test_database_outage_while_the_herd_produces_loses_and_doubles_nothing(
     tmp_path, influxdb1_private
 ):
     db_url = influxdb1_private.url
-    create_db(db_url)
+    create_database(db_url, DB)
     events = herd_events(20, 12.0, seed=5)
     store = Store.open(tmp_path)
     sink = InfluxV1Sink(url=db_url, database=DB, site="home-farm", timeout_s=2.0)
@@ -130,7 +111,7 @@ def test_forwarder_killed_while_the_database_is_down_delivers_the_backlog_after_
     tmp_path, influxdb1_private
 ):
     db_url = influxdb1_private.url
-    create_db(db_url)
+    create_database(db_url, DB)
     influxdb1_private.stop()
     config = tmp_path / "boutline.toml"
     config.write_text(

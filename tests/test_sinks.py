@@ -11,14 +11,13 @@ import queue
 import subprocess
 import sys
 import time
-import urllib.parse
-import urllib.request
 import uuid
 from dataclasses import dataclass
 from typing import Any
 
 import paho.mqtt.client as mqtt
 import pytest
+from influxhttp import create_database, export, rows
 
 from gateway.lineprotocol import points_for
 from gateway.outbox import Record, fact_of
@@ -55,12 +54,6 @@ def records(fs: list[dict[str, Any]]) -> list[Record]:
     return [Record(i + 1, f["kind"], T, f) for i, f in enumerate(fs)]
 
 
-def _http(url: str, data: bytes | None = None) -> bytes:
-    req = urllib.request.Request(url, data=data, method="POST" if data is not None else "GET")
-    with urllib.request.urlopen(req, timeout=10) as r:
-        return r.read()
-
-
 @dataclass
 class Case:
     """A sink and how to read back, from its server, what it delivered."""
@@ -73,19 +66,11 @@ class Case:
 
 def _influx1_case(influxdb1, site: str) -> Case:
     db = f"sinks_{uuid.uuid4().hex[:8]}"
-    _http(f"{influxdb1.url}/query", urllib.parse.urlencode({"q": f"CREATE DATABASE {db}"}).encode())
+    create_database(influxdb1.url, db)
     sink = InfluxV1Sink(url=influxdb1.url, database=db, site=site)
 
     def read() -> set:
-        q = urllib.parse.urlencode({"db": db, "q": "SELECT * FROM /.*/", "epoch": "ms"})
-        res = json.loads(_http(f"{influxdb1.url}/query?{q}"))["results"][0]
-        got = set()
-        for s in res.get("series", []):
-            for row in s["values"]:
-                cols = {c: v for c, v in zip(s["columns"], row, strict=True) if v is not None}
-                t = cols.pop("time")
-                got.add((s["name"], t, tuple(sorted(cols.items()))))
-        return got
+        return {(m, t, tuple(sorted(cols.items()))) for m, t, cols in rows(influxdb1.url, db)}
 
     def expect(fs) -> set:
         return {
@@ -105,11 +90,8 @@ def _victoria_case(victoria, site: str) -> Case:
     sink = InfluxV2Sink(url=victoria.url, org="home-farm", bucket="boutline", token="t", site=site)
 
     def read() -> set:
-        _http(f"{victoria.url}/internal/force_flush")
-        q = urllib.parse.urlencode({"match[]": f'{{site="{site}"}}'})
         got = set()
-        for line in _http(f"{victoria.url}/api/v1/export?{q}").splitlines():
-            row = json.loads(line)
+        for row in export(victoria.url, f'{{site="{site}"}}'):
             labels = row["metric"]
             name = labels.pop("__name__")
             for v, t in zip(row["values"], row["timestamps"], strict=True):
