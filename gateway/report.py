@@ -137,23 +137,25 @@ class ReportSource:
         known = self.animals()
         unknown = [a for a in wanted if a not in set(known)]
         if unknown:
-            shown = ", ".join(known[:8]) + (", ..." if len(known) > 8 else "")
+            shown = ", ".join(k[:40] for k in known[:8]) + (", ..." if len(known) > 8 else "")
             raise ConfigError(
-                f"unknown animal {unknown[0]!r}; this store knows {len(known)} animal(s)"
+                f"unknown animal {unknown[0][:40]!r}; this store knows {len(known)} animal(s)"
                 + (f": {shown}" if known else " (none yet)")
             )
         return list(dict.fromkeys(wanted))
 
     def last_day(self) -> date:
-        """The newest day with data (budgets or bouts), else today."""
+        """The newest day with anything in it (budgets, bouts, alerts, collars), else today."""
+        times = [r[0] for r in self.conn.execute("SELECT MAX(end) FROM bouts")]
+        for table, col in (("alerts", "updated_at"), ("collar_health", "updated_at")):
+            if self.has(table):
+                times += [r[0] for r in self.conn.execute(f"SELECT MAX({col}) FROM {table}")]
+        days = [self.clock.day_of(float(t)) for t in times if t is not None]
         if self.has("budget_days"):
             row = self.conn.execute("SELECT MAX(day) FROM budget_days").fetchone()
             if row and row[0]:
-                return date.fromisoformat(row[0])
-        row = self.conn.execute("SELECT MAX(end) FROM bouts").fetchone()
-        if row and row[0] is not None:
-            return self.clock.day_of(float(row[0]))
-        return self.clock.day_of(datetime.now().timestamp())
+                days.append(date.fromisoformat(row[0]))
+        return max(days) if days else self.clock.day_of(datetime.now().timestamp())
 
     def day_range(
         self, first: str | None, last: str | None, default_days: int
