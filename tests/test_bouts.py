@@ -303,7 +303,7 @@ def test_tracker_recovers_bouts_from_a_noisy_classifier() -> None:
 
 def test_tracker_restart_with_full_snapshot_loses_nothing() -> None:
     rng = np.random.default_rng(3)
-    _, _, post = realistic_day(rng, hours=6)
+    _, _, post = realistic_day(rng, hours=3)
     cut = len(post) // 2 + 7
     items = [Posteriors("cow", HOP * i, p) for i, p in enumerate(post)]
     whole = HerdTracker(CLASSES, sticky(), HOP)

@@ -340,3 +340,27 @@ def test_stationary_distribution_matches_eigenvector() -> None:
     w, v = np.linalg.eig(a.T)
     ref = np.real(v[:, np.argmin(abs(w - 1))])
     np.testing.assert_allclose(stationary_distribution(a), ref / ref.sum(), atol=1e-9)
+
+
+def test_restore_from_a_longer_lag_grows_the_ring_and_catches_up() -> None:
+    post = np.random.default_rng(0).dirichlet(np.ones(5), size=300)
+    long_lag = SmootherBank(HmmParams.build(CLASSES, None, HOP, lag_s=500.0))
+    out = long_lag.push_many(Posteriors("x", HOP * i, p) for i, p in enumerate(post[:150]))
+    state = json.loads(json.dumps(long_lag.handles["x"].snapshot()))
+    bank = SmootherBank(HmmParams.build(CLASSES, None, HOP, lag_s=60.0), capacity=1)
+    others = [Posteriors(f"o{k}", HOP * i, post[i]) for i in range(20) for k in range(3)]
+    before = bank.push_many(others)
+    bank.get("x").restore(state)
+    assert bank.get("x").pending == 100
+    out += bank.push_many(Posteriors("x", HOP * i, p) for i, p in enumerate(post[150:], 150))
+    assert bank.get("x").pending == 12  # the surplus was decided with the next window
+    rest = bank.flush_all()
+    out += [d for d in rest if d.animal == "x"]
+    assert [d.t for d in out] == [HOP * i for i in range(300)]
+    # The other animals' pending hops survived the ring's growth.
+    ref = SmootherBank(HmmParams.build(CLASSES, None, HOP, lag_s=60.0))
+    expect = ref.push_many(others) + ref.flush_all()
+    got = before + [d for d in rest if d.animal != "x"]
+    assert sorted((d.animal, d.t, d.behaviour) for d in got) == sorted(
+        (d.animal, d.t, d.behaviour) for d in expect
+    )
