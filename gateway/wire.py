@@ -22,6 +22,7 @@ import re
 import struct
 from dataclasses import dataclass
 from enum import StrEnum
+from itertools import chain
 
 import numpy as np
 
@@ -199,6 +200,10 @@ def _is_number(v: object) -> bool:
     return isinstance(v, int | float) and not isinstance(v, bool)
 
 
+_LIST, _THREE = {list}, {3}
+_NUMBER_TYPES = frozenset((int, float))  # not bool: type(True) is bool
+
+
 def _decode_json(payload: bytes, collar_id: str, limits: Limits) -> Frame | Rejection:
     try:
         text = payload.decode("utf-8")
@@ -235,9 +240,14 @@ def _decode_json(payload: bytes, collar_id: str, limits: Limits) -> Frame | Reje
         )
     if not acc:
         return Rejection(Reason.BAD_SHAPE, "acc is empty", collar_id)
-    for row in acc:
-        if not isinstance(row, list) or len(row) != 3 or not all(_is_number(v) for v in row):
-            return Rejection(Reason.BAD_SHAPE, "every acc row must be [x, y, z] numbers", collar_id)
+    # Same rule as _is_number on every value (JSON yields exact int/float/bool types), checked
+    # by C-level iteration: a per-sample Python loop was a third of the decode time.
+    if (
+        set(map(type, acc)) != _LIST
+        or set(map(len, acc)) != _THREE
+        or not set(map(type, chain.from_iterable(acc))) <= _NUMBER_TYPES
+    ):
+        return Rejection(Reason.BAD_SHAPE, "every acc row must be [x, y, z] numbers", collar_id)
     try:
         arr = np.array(acc, dtype=np.float64)
     except OverflowError:
@@ -279,8 +289,11 @@ def _decode_binary(payload: bytes, collar_id: str, limits: Limits) -> Frame | Re
     if not math.isfinite(scale) or not 0.0 < scale <= 0.01:
         return Rejection(Reason.BAD_SCALE, f"scale {scale!r} g/LSB outside (0, 0.01]", collar_id)
     raw = np.frombuffer(payload, dtype="<i2", count=3 * count, offset=offset)
-    arr = raw.reshape(count, 3).astype(np.float64) * scale
-    return _validated(collar_id, seq, t_ms / 1000.0, rate_c / 100.0, arr, battery, limits)
+    # float32 product is the float64 one rounded once (int16 x float32 is exact in float64);
+    # the range check uses the exact float64 peak, from the integers
+    arr = raw.reshape(count, 3).astype(np.float32) * np.float32(scale)
+    peak = max(int(raw.max()), -int(raw.min())) * scale
+    return _validated(collar_id, seq, t_ms / 1000.0, rate_c / 100.0, arr, battery, limits, peak)
 
 
 def _validated(
@@ -291,6 +304,7 @@ def _validated(
     arr: np.ndarray,
     battery: float | None,
     limits: Limits,
+    peak: float | None = None,
 ) -> Frame | Rejection:
     if not math.isfinite(t) or t <= 0.0:
         return Rejection(Reason.BAD_TIME, f"t {t!r} is not a positive unix time", collar_id)
@@ -298,9 +312,10 @@ def _validated(
         return Rejection(
             Reason.BAD_RATE, f"hz {hz!r} outside {limits.min_hz:g}..{limits.max_hz:g}", collar_id
         )
-    if not np.isfinite(arr).all():
+    if peak is None:
+        peak = float(np.abs(arr).max())  # NaN propagates through max: one pass checks both
+    if not math.isfinite(peak):
         return Rejection(Reason.NOT_FINITE, "acc holds NaN or inf", collar_id)
-    peak = float(np.abs(arr).max())
     if peak > limits.max_abs_g:
         return Rejection(
             Reason.OUT_OF_RANGE, f"|a| {peak:.3g} g > {limits.max_abs_g:g} g", collar_id
@@ -311,4 +326,4 @@ def _validated(
             return Rejection(
                 Reason.BAD_BATTERY, f"battery_v {battery!r} outside 0..60 V", collar_id
             )
-    return Frame(collar_id, int(seq), t, hz, arr.astype(np.float32), battery)
+    return Frame(collar_id, int(seq), t, hz, arr.astype(np.float32, copy=False), battery)
