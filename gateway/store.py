@@ -263,7 +263,8 @@ class Store:
     ) -> None:
         """Write events (and tracker snapshots by animal) in one transaction.
 
-        On failure the batch is kept for the next call and the error is raised:
+        ``BoutClosed`` and ``StateChanged`` are stored; any other object in ``events`` (an
+        alert, a budget) is only handed to the listeners, in the same transaction. On failure the batch is kept for the next call and the error is raised:
         StoreFullError when the disk or the size cap is full, StoreError otherwise.
         """
         if self.readonly:
