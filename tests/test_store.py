@@ -377,3 +377,13 @@ def test_retention_prunes_by_the_data_clock_once_a_day(tmp_path: Path) -> None:
         assert store.counts() == {"animals": 1, "bouts": 4, "no_data": 2}
     with pytest.raises(StoreError, match="retention_days"):
         Store.open(tmp_path, retention_days=0)
+
+
+def test_other_objects_reach_listeners_and_are_not_stored(tmp_path: Path) -> None:
+    got = []
+    alert = {"kind": "alert", "animal": "cow1"}  # what another part may pass along
+    with Store.open(tmp_path) as store:
+        store.add_listener(lambda conn, events: got.extend(events))
+        store.write_events([alert, *day_of_events("cow1")])
+        assert got[0] is alert and len(got) == 8
+        assert store.counts() == {"animals": 1, "bouts": 2, "no_data": 1}
