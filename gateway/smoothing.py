@@ -27,6 +27,10 @@ smoothing; Viterbi decoding of an HMM over class posteriors is common practice, 
 Decisions tile time without overlap: a window starting at ``t`` decides the hop-long slice
 at its centre, ``[t + (window_s - hop_s) / 2, ... + hop_s)``.
 
+Every animal's state lives in one :class:`SmootherBank` (arrays indexed by animal), so the
+windows of a tick are decided with a few numpy calls for the whole herd; an
+:class:`AnimalSmoother` is one animal's handle on it.
+
 >>> import numpy as np
 >>> from gateway.types import Posteriors
 >>> params = HmmParams.build(("rest", "walk"), np.array([[0.9, 0.1], [0.1, 0.9]]), 5.0,
