@@ -27,6 +27,8 @@ field keys escape comma, equals sign and space; string field values are double-q
 
 from __future__ import annotations
 
+import contextlib
+import importlib
 import math
 from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass
@@ -379,10 +381,29 @@ def converter_kinds() -> list[str]:
     return sorted(_CONVERTERS)
 
 
+# The module that owns a fact kind and registers its converter when imported. A process that
+# forwards facts without having imported it (python -m gateway.outbox) loads it on first use.
+_PROVIDERS = {
+    "daily_budget": "gateway.budgets",
+    "alert": "gateway.alerts",
+    "collar_health": "gateway.collarhealth",
+}
+
+
+def _converter(kind: Any) -> Converter | None:
+    if not isinstance(kind, str):
+        return None
+    provider = _PROVIDERS.pop(kind, None)
+    if provider is not None and (kind not in _CONVERTERS or kind in _DEFAULTS):
+        with contextlib.suppress(ModuleNotFoundError):  # not in this build: default or none
+            importlib.import_module(provider)
+    return _CONVERTERS.get(kind)
+
+
 def points_for(fact: Mapping[str, Any], site: str) -> list[Point]:
     """The points for one fact (a dict with ``kind``); raises LookupError/ValueError if it cannot."""
     kind = fact.get("kind")
-    fn = _CONVERTERS.get(kind) if isinstance(kind, str) else None
+    fn = _converter(kind)
     if fn is None:
         raise LookupError(f"no line-protocol converter for fact kind {kind!r}")
     points = fn(fact, site)
@@ -448,12 +469,8 @@ register_converter("bout_closed", _bout)
 register_converter("state_changed", _state)
 register_converter("gateway_stats", simple_converter("gateway_stats", "t"))
 register_converter("gateway_alert", simple_converter("gateway_alert", "t", ("cause",)))
-# Defaults for the analytics' facts; their modules may register converters of their own.
+# A default for the budget ledger's facts; gateway/budgets.py may register its own.
 register_converter("daily_budget", _budget, default=True)
-register_converter("alert", simple_converter("alert", "t", ("animal", "rule")), default=True)
-register_converter(
-    "collar_health", simple_converter("collar_health", "t", ("collar", "animal")), default=True
-)
 
 
 # --------------------------------------------------------------------------- docs

@@ -692,7 +692,11 @@ class Forwarder:
     def _run(self) -> None:
         try:
             while not self._stop.is_set():
-                delay = self.step()
+                try:
+                    delay = self.step()
+                except Exception as exc:  # a bug must not end delivery for good: say it, retry
+                    log.exception("%s: unexpected error; retrying", self.name)
+                    delay = self._failed(SinkUnavailable(f"unexpected error: {exc!r}"), "bug")
                 if delay > 0:
                     self._wake.wait(delay)
                     self._wake.clear()

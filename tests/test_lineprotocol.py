@@ -8,7 +8,9 @@ from pathlib import Path
 
 import pytest
 
+from gateway.alerts import Alert
 from gateway.budgets import DailyBudget
+from gateway.collarhealth import CollarStatus
 from gateway.lineprotocol import (
     SCHEMA,
     Point,
@@ -110,10 +112,9 @@ def _facts():
         StateChanged("cow 1", "ruminating", T + 600.0, 0.9, "grazing"),
         StateChanged("cow 1", "no_data", T + 900.0, 0.0, None),
         budget,
-        {"kind": "alert", "animal": "cow 1", "rule": "rumination_drop", "value": 300.0,
-         "baseline": 441.0, "change_pct": -32.0, "message": "rumination down", "t": T},
-        {"kind": "collar_health", "collar": "C1", "animal": "cow 1", "frame_rate_hz": 1.0,
-         "loss": 0.01, "battery_v": 3.6, "last_seen": T, "frames": 3600, "t": T},
+        Alert("a1", "rumination_drop", "cow 1", "C1", "raised", T, T, "Rumination down",
+              "rumination 32 % under baseline", {"value": 300.0, "baseline": 441.0, "z": -2.5}),
+        CollarStatus("C1", "cow 1", T, T - 3600, T, 3600, 36, 0, 1.0, 0.01, 3.6, T, None, 60),
         GatewayStats(T, 100, 2, 50, 3, 0.5, 0, 60.0),
         GatewayAlert("outbox_full", "dropped 5", T, 5),
     ]  # fmt: skip
@@ -217,3 +218,24 @@ def test_the_document_holds_the_schema_exactly():
     )
     fact = fact_of(dataclasses.replace(_facts()[0]))
     assert points_for(fact, "home-farm")[0].line() in text  # the worked example is real
+
+
+def test_a_forwarding_process_uses_the_owners_converter_without_importing_it():
+    # A fresh interpreter, as `python -m gateway.outbox` is: only lineprotocol is imported.
+    import subprocess
+    import sys
+
+    script = (
+        "import sys\n"
+        "from gateway.lineprotocol import points_for\n"
+        "assert 'gateway.collarhealth' not in sys.modules\n"
+        "fact = {'kind': 'collar_health', 'collar_id': 'C1', 'animal': None, 'at': 60.0,\n"
+        "        'frame_rate_hz': 1.0, 'loss': 0.0, 'last_seen': 59.0, 'recent_frames': 60}\n"
+        "print(points_for(fact, 's')[0].line())\n"
+    )
+    out = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True, check=True)
+    # gateway/collarhealth.py's converter: collar_id and "at", an unassigned collar named so
+    assert out.stdout.strip() == (
+        "collar_health,animal=unassigned,collar=C1,site=s frame_rate_hz=1.0,loss=0.0,"
+        "last_seen=59.0,frames=60i 60000"
+    )
