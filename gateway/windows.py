@@ -295,6 +295,8 @@ class Windows:
                 st.tail_t = t + (frame.n - 1) / fs
                 st.tail_v = acc[-1].astype(np.float64)
                 return
+            if st.tail_t is not None and self._commit_contiguous(st, t, acc):
+                return
         src_t = t + np.arange(frame.n, dtype=np.float64) / frame.hz
         if st.tail_t is not None:
             keep = src_t > st.tail_t + _EPS / fs
@@ -330,6 +332,31 @@ class Windows:
             self._write(st, vals, real)
         st.tail_t = float(xs[-1])
         st.tail_v = ys[-1].copy()
+
+    def _commit_contiguous(self, st: _Stream, t: float, acc: np.ndarray) -> bool:
+        """The common case off the grid: a collar at the model's rate whose frame starts one
+        sample after the last one. Its samples and the grid points then keep one phase, so
+        the linear interpolation of the general path has one weight for the whole frame
+        (the same values, a handful of array operations instead of two dozen). False when
+        the frame does not fit this case; the general path then handles it."""
+        fs, n = self.fs, acc.shape[0]
+        assert st.head is not None and st.tail_t is not None
+        if abs((t - st.tail_t) * fs - 1.0) > 1e-6:
+            return False
+        u0 = st.head - st.tail_t * fs  # first grid point, in samples after the last sample
+        last_k = math.floor((t + (n - 1) / fs) * fs + _EPS)
+        m = last_k - st.head + 1
+        if not (_EPS <= u0 < 1.0 and 1 <= m <= n):
+            return False
+        ys = np.empty((n + 1, 3), dtype=np.float64)
+        ys[0] = st.tail_v
+        ys[1:] = acc
+        w = u0
+        vals = ys[:m] * (1.0 - w) + ys[1 : m + 1] * w
+        self._write(st, vals, np.ones(m, dtype=np.bool_))
+        st.tail_t = t + (n - 1) / fs
+        st.tail_v = ys[-1].copy()
+        return True
 
     def _fill_missing(self, st: _Stream, k_to: int) -> None:
         """Advance ``head`` to ``k_to`` over a gap with no samples (last value held)."""

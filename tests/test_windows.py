@@ -67,7 +67,9 @@ def test_10hz_aligned_windows_are_the_raw_samples() -> None:
     assert w.collect().batch.x.shape[0] == 0  # collected once only
 
 
-@pytest.mark.parametrize(("hz", "per_frame"), [(12.5, 25), (25.0, 25), (12.5, 13), (25.0, 60)])
+@pytest.mark.parametrize(
+    ("hz", "per_frame"), [(12.5, 25), (25.0, 25), (12.5, 13), (25.0, 60), (10.0, 10), (10.0, 7)]
+)
 def test_faster_collars_match_numpy_interp(hz: float, per_frame: int) -> None:
     """Reference: numpy.interp over the whole sample clock, axis by axis."""
     t0 = T0 + 0.037  # collar clock not on the model's grid
