@@ -8,6 +8,7 @@ from pathlib import Path
 
 import pytest
 
+from gateway.alerts import Alert
 from gateway.errors import SinkRejected
 from gateway.outbox import GatewayAlert, Record, fact_of
 from gateway.sink_mqtt import CAUTION, MqttSink, Topics, animal_segment, messages_for
@@ -53,9 +54,10 @@ def test_the_documented_payloads_are_what_the_gateway_publishes():
     facts = [
         StateChanged("cow-17", "ruminating", T + 3600, 0.91, "grazing"),
         BoutClosed("cow-17", "grazing", T, T + 3600, 0.84, 12.0),
-        {"kind": "alert", "animal": "cow-17", "rule": "rumination_drop", "value": 300.0,
-         "baseline": 441.0, "change_pct": -32.0, "t": T + 86400,
-         "message": "rumination 32 % under the cow's own 7-day baseline"},
+        Alert("cow-17:rumination_drop:1767312000", "rumination_drop", "cow-17", "C0017",
+              "raised", T + 86400, T + 86400, "Rumination down",
+              "rumination 300 min in the last 24 h, 32 % under the cow's own 7-day baseline"
+              " of 441 min", {"value": 300.0, "baseline": 441.0, "z": -2.4}),
         GatewayAlert("outbox_full", blocks[3]["message"], T + 7200, 1200),
     ]  # fmt: skip
     for block, fact in zip(blocks, facts, strict=False):
