@@ -341,7 +341,8 @@ class Windows:
         the frame does not fit this case; the general path then handles it."""
         fs, n = self.fs, acc.shape[0]
         assert st.head is not None and st.tail_t is not None
-        if abs((t - st.tail_t) * fs - 1.0) > 1e-6:
+        # 1e-4 of a sample: 40x the float resolution of unix seconds * fs (ulp 2.4e-7 s)
+        if abs((t - st.tail_t) * fs - 1.0) > 1e-4:
             return False
         u0 = st.head - st.tail_t * fs  # first grid point, in samples after the last sample
         last_k = math.floor((t + (n - 1) / fs) * fs + _EPS)
