@@ -325,7 +325,7 @@ SCHEMA: dict[str, Measurement] = {
         Measurement(
             name="gateway_stats",
             kind="gateway_stats",
-            doc="Gateway counters, sampled periodically (totals since the gateway started).",
+            doc="Gateway counters, sampled every minute (totals since the gateway started).",
             tags={"site": _SITE},
             fields={
                 "frames_in": FieldSpec("int", "collar frames accepted"),

@@ -86,6 +86,8 @@ _ROW_OVERHEAD = 64
 _CAP_LOW_WATER = 0.9
 # Set-aside facts kept per sink for inspection; older ones are forgotten (they were counted).
 _REJECTED_KEEP = 10_000
+# Gateway figures go to the sinks this often: dashboards plot them per minute.
+_STATS_EVERY_S = 60.0
 # Delivery latency buckets: live delivery takes well under a second, outages hours.
 _LATENCY_BUCKETS = (0.05, 0.1, 0.25, 0.5, 1, 2.5, 5, 10, 30, 60, 300, 900, 3600, 14400, 86400)
 
@@ -875,7 +877,9 @@ class _Collector:
 class Outputs:
     """The outbox and its forwarders: what the daemon attaches to the store, starts and stops.
 
-    With a ``registry`` (e.g. ``Telemetry.registry``) the sink figures appear in /metrics.
+    With a ``registry`` (e.g. ``Telemetry.registry``) the sink figures appear in /metrics,
+    and every ``stats_every_s`` a ``gateway_stats`` fact made from the registry's pipeline
+    counters is queued for the sinks.
     """
 
     def __init__(
@@ -883,14 +887,49 @@ class Outputs:
         outbox: Outbox,
         sinks: Sequence[tuple[Sink, dict[str, Any]]],
         registry: CollectorRegistry | None = None,
+        *,
+        stats_every_s: float = _STATS_EVERY_S,
     ) -> None:
         self.outbox = outbox
         self.metrics = SinkMetrics()
         self.forwarders = [Forwarder(outbox, s, metrics=self.metrics, **o) for s, o in sinks]
         self.registry = registry
+        self.stats_every_s = stats_every_s
+        self.started_at = time.monotonic()
+        self._stats_stop = threading.Event()
+        self._stats_thread: threading.Thread | None = None
         self._collector = _Collector(self)
         if registry is not None:
             registry.register(self._collector)
+
+    def stats(self) -> GatewayStats:
+        """Pipeline totals from the registry (gateway/telemetry.py names) and the backlog."""
+        total = self._registry_total
+        return GatewayStats(
+            t=self.outbox.clock(),
+            frames_in=int(total("boutline_frames_in_total")),
+            rejects=int(total("boutline_rejects_total")),
+            windows=int(total("boutline_windows_classified_total")),
+            events=int(total("boutline_events_total")),
+            inference_s=total("boutline_inference_seconds_sum"),
+            backlog=max((self.outbox.backlog(f.name) for f in self.forwarders), default=0),
+            uptime_s=time.monotonic() - self.started_at,
+        )
+
+    def _registry_total(self, sample: str) -> float:
+        """Sum of a sample over all its labels; 0 when the registry does not have it."""
+        if self.registry is None:
+            return 0.0
+        return float(
+            sum(s.value for m in self.registry.collect() for s in m.samples if s.name == sample)
+        )
+
+    def _stats_loop(self) -> None:
+        while not self._stats_stop.wait(self.stats_every_s):
+            try:
+                self.outbox.put([self.stats()])
+            except StoreError as exc:  # figures are not worth stopping for; say so, go on
+                log.warning("gateway stats not queued: %s", exc)
 
     @classmethod
     def from_settings(
@@ -920,12 +959,20 @@ class Outputs:
         """Start every forwarder; wait up to ``wait_s`` for their first check; return problems."""
         for fw in self.forwarders:
             fw.start()
+        if self.registry is not None and self._stats_thread is None:
+            self._stats_thread = threading.Thread(
+                target=self._stats_loop, name="gateway-stats", daemon=True
+            )
+            self._stats_thread.start()
         deadline = time.monotonic() + wait_s
         for fw in self.forwarders:
             fw.first_result.wait(max(0.0, deadline - time.monotonic()))
         return [f"{fw.name}: {fw.last_error}" for fw in self.forwarders if fw.state == "failing"]
 
     def stop(self, timeout_s: float = 15.0) -> None:
+        self._stats_stop.set()
+        if self._stats_thread is not None:
+            self._stats_thread.join(timeout_s)
         for fw in self.forwarders:
             fw.request_stop()
         for fw in self.forwarders:

@@ -170,3 +170,26 @@ def test_binds_loopback_by_default_and_a_busy_port_is_a_clear_error(gateway):
 def test_health_without_outputs():
     code, body = Health(lambda: True, lambda: True).check()
     assert code == 200 and body["sinks"] == {} and body["message"] == "ready"
+
+
+def test_gateway_stats_from_the_pipeline_counters_reach_the_sink(tmp_path):
+    with Store.open(tmp_path) as store:
+        path = store.path
+    tel = Telemetry()
+    tel.frames_in.inc(42)
+    tel.reject("bad_json", 3)
+    tel.windows_classified.inc(7)
+    tel.event("bout_closed", 2)
+    tel.inference_seconds.observe(0.25)
+    with ScriptedPeer() as peer:
+        sink = InfluxV1Sink(url=peer.url, database="d", site="s")
+        outbox = Outbox(path, sinks=["influx"], site="s")
+        outputs = Outputs(outbox, [(sink, {"flush_interval_s": 0.0})], tel.registry,
+                          stats_every_s=0.1)  # fmt: skip
+        outputs.start()
+        assert wait_for(lambda: any(b"gateway_stats" in r.body for r in peer.writes()), 10)
+        outputs.stop()
+    line = next(ln for r in peer.writes() for ln in r.body.split(b"\n") if b"gateway_stats" in ln)
+    assert line.startswith(b"gateway_stats,site=s ")
+    for part in (b"frames_in=42i", b"rejects=3i", b"windows=7i", b"events=2i", b"inference_s=0.25"):
+        assert part in line
