@@ -24,7 +24,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Iterator
-from dataclasses import dataclass
+from dataclasses import dataclass, fields
 from datetime import UTC, datetime
 from itertools import islice
 
@@ -304,15 +304,29 @@ class Herd:
         c = self._col
         return (c_t - c.clock_off_s[rows]) / (1.0 + c.clock_ppm[rows] * 1e-6)
 
-    def generate(self, t_a: float, t_b: float, rows: np.ndarray | None = None) -> FrameBlock:
+    def generate(
+        self, t_a: float, t_b: float, rows: np.ndarray | None = None, *, samples: bool = True
+    ) -> FrameBlock:
         """Frames of local collars ``rows`` (default all) sent in true time ``[t_a, t_b)``,
-        times in seconds since the herd's start."""
+        times in seconds since the herd's start. ``samples=False`` skips the accelerations
+        (``acc`` is then ``[F, 0, 3]``): frame times, seq and battery only, much faster."""
         rows = np.arange(len(self.local)) if rows is None else np.asarray(rows)
         col, n, fdt = self._col, self.samples_per_frame, self.frame_dt
         if self.end is not None:
             t_b = min(t_b, self.end - self.start)
         if t_b <= t_a or rows.size == 0:
             return _empty_block(n)
+        # long spans go in pieces, so memory stays bounded whatever the caller asks for
+        piece = max(fdt, _MAX_SAMPLES_PER_BLOCK / (rows.size * self.hz))
+        if samples and t_b - t_a > 1.5 * piece:
+            edges = np.append(np.arange(t_a, t_b, piece), t_b)
+            parts = [self.generate(a, b, rows) for a, b in zip(edges[:-1], edges[1:], strict=True)]
+            parts = [p for p in parts if len(p)]
+            if not parts:
+                return _empty_block(n)
+            return FrameBlock(
+                *(np.concatenate([getattr(p, f.name) for p in parts]) for f in fields(FrameBlock))
+            )
         # frame k of a collar is sent when its last sample is done: phase + (k+1)*fdt
         c_a = self._clock(rows, np.full(rows.shape, t_a))
         k_lo = np.ceil((c_a - col.phase_s[rows]) / fdt - 1.0 - 1e-9).astype(np.int64)
@@ -334,6 +348,9 @@ class Herd:
         f = r.shape[0]
         if f == 0:
             return _empty_block(n)
+        if not samples:
+            t0 = col.phase_s[r] + k * fdt + self.start
+            return FrameBlock(r, k, sent + self.start, t0, np.zeros((f, 0, 3), np.float32), batt)
         # sample times: on the collar clock a regular grid, in true time slightly stretched
         samp = k[:, None] * n + np.arange(n)[None, :]
         c_t = col.phase_s[r][:, None] + samp / self.hz

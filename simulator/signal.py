@@ -171,7 +171,7 @@ def neck_acceleration(
     i = sub((State.RUM_S, State.RUM_L))
     if i.size:
         r, ti, bu, bz = row[i], t[i], bout_u[bout[i]], bout_z[bout[i]]
-        cyc = tr.cud_s[r] * (1.0 + 0.04 * bz[:, 1])
+        cyc = tr.cud_s[r] * (1.0 + 0.02 * np.clip(bz[:, 1], -1.0, 1.0))
         pos = np.mod(since[i] + cyc * bu[:, 0], cyc)
         pause = tr.pause_s[r]
         chewing = _smoothstep((pos - pause) / 0.4) * _smoothstep((cyc - pos) / 0.4)
@@ -207,8 +207,8 @@ def neck_acceleration(
         n_bite = np.floor(cyc)
         frac = cyc - n_bite
         jit = 0.12 * (rand.uniform(kk, n_bite.astype(np.int64) * 4) - 0.5)
-        pulse = np.exp(-0.5 * ((frac - 0.5 - jit) / 0.07) ** 2)
-        pulse = pulse - np.exp(-0.5 * ((frac - 0.68 - jit) / 0.1) ** 2) * 0.5  # head recoils
+        pulse = np.exp(-0.5 * ((frac - 0.5 - jit) / 0.09) ** 2)
+        pulse = pulse - np.exp(-0.5 * ((frac - 0.72 - jit) / 0.14) ** 2) * 0.3  # head recoils
         bamp = tr.bite_g[r] * (0.7 + 0.6 * rand.uniform(kk, n_bite.astype(np.int64) * 4 + 1))
         bamp = bamp * (rand.uniform(kk, n_bite.astype(np.int64) * 4 + 2) < 0.9)  # missed bites
         # now and then the head comes up to look around, chewing the mouthful, no bites
