@@ -55,7 +55,7 @@ class CollarStatus:
 
     collar_id: str
     animal: str
-    at: float
+    at: float  # when this status was taken
     first_seen: float
     last_seen: float
     frames: int  # received since first seen

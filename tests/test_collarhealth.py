@@ -106,10 +106,10 @@ def test_save_and_load_round_trip() -> None:
 
 def test_collar_health_as_a_line_protocol_point() -> None:
     ch = CollarHealth()
-    ch.update(frame(1, 100.0, 3.7))
+    ch.update(frame(1, 100.0, 3.7), animal="cow-1")
     (p,) = points_for(fact_of(ch.snapshot(130.0)[0]), "farm")
     assert p.measurement == "collar_health"
-    assert p.tags == {"site": "farm", "collar": "C1", "animal": "unassigned"}
+    assert p.tags == {"site": "farm", "collar": "C1", "animal": "cow-1"}
     assert p.fields["battery_v"] == 3.7 and p.fields["frames"] == 1
     assert p.time_ms == 130_000
 
