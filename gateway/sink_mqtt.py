@@ -284,7 +284,10 @@ class MqttSink:
         if self._client is not None and self._connected.is_set():
             return
         self._teardown()
-        self._client = self._make_client()
+        try:
+            self._client = self._make_client()
+        except ConfigError as exc:  # e.g. a TLS file not there yet: report, retry later
+            raise SinkRejected(str(exc), "config") from exc
         self._connack.clear()
         try:
             self._client.connect(self.host, self.port, keepalive=self.keepalive_s)
@@ -300,12 +303,9 @@ class MqttSink:
                 f"{self._where} did not answer CONNECT within {self.timeout_s:g} s"
             )
         if self._refused is not None:
-            refused = self._refused
+            error = self._refusal()
             self._teardown()
-            raise SinkRejected(
-                f"{self._where} refused the connection ({refused}); check mqtt.username/password",
-                "auth",
-            )
+            raise error
 
     def write(self, batch: Sequence[Record]) -> None:
         msgs: list[Message] = []
@@ -318,11 +318,8 @@ class MqttSink:
                 ) from exc
         if not msgs:
             return
-        if self._refused is not None:
-            raise SinkRejected(
-                f"{self._where} refused the connection ({self._refused}); check mqtt.username/password",
-                "auth",
-            )
+        if self._refused is not None:  # paho's reconnect was refused: the password changed
+            raise self._refusal()
         if self._client is None or not self._connected.is_set():
             raise SinkUnavailable(
                 f"{self._where} is not connected; paho reconnects in the background"
@@ -343,6 +340,13 @@ class MqttSink:
                 raise SinkUnavailable(
                     f"{self._where} did not acknowledge within {self.timeout_s:g} s"
                 )
+
+    def _refusal(self) -> SinkRejected:
+        return SinkRejected(
+            f"{self._where} refused the connection ({self._refused}); check mqtt.username"
+            " and mqtt.password",
+            "auth",
+        )
 
     def close(self) -> None:
         """Say ``offline`` (retained) and disconnect; safe without open()."""

@@ -69,3 +69,11 @@ def test_the_documented_payloads_are_what_the_gateway_publishes():
     assert json.loads(MqttSink(host="h", port=1, site="home-farm")._status(False)) == blocks[-1]
     online = json.loads(MqttSink(host="h", port=1, site="home-farm")._status(True))
     assert set(online) == set(blocks[-2])
+
+
+def test_unusable_tls_files_are_a_configuration_rejection(tmp_path):
+    sink = MqttSink(host="127.0.0.1", port=1, site="s", tls=True, ca_file=str(tmp_path / "no.pem"))
+    with pytest.raises(SinkRejected, match="mqtt TLS files cannot be used") as info:
+        sink.open()
+    assert info.value.cause == "config"
+    sink.close()
