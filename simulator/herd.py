@@ -331,7 +331,7 @@ class Herd:
         c_a = self._clock(rows, np.full(rows.shape, t_a))
         k_lo = np.ceil((c_a - col.phase_s[rows]) / fdt - 1.0 - 1e-9).astype(np.int64)
         k_first = np.ceil((col.clock_off_s[rows] - col.phase_s[rows]) / fdt).astype(np.int64)
-        k_lo = np.maximum(k_lo, k_first)
+        k_lo = np.maximum(k_lo, np.maximum(k_first, 0))  # seq counts from 0
         span = int(np.ceil((t_b - t_a) / fdt * (1 + 1e-4))) + 2
         kk = k_lo[:, None] + np.arange(span)[None, :]
         rr = np.broadcast_to(rows[:, None], kk.shape)
