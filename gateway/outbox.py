@@ -179,6 +179,17 @@ def _json_default(o: Any) -> Any:
     return str(o)
 
 
+def _load(kind: str, body: str) -> dict[str, Any]:
+    """A stored fact; a damaged row becomes a fact no sink can convert, so it is set aside."""
+    try:
+        fact = json.loads(body)
+    except ValueError:
+        fact = None
+    if not isinstance(fact, dict):
+        return {"kind": "damaged", "stored_kind": kind, "body": str(body)[:200]}
+    return fact
+
+
 @dataclass(frozen=True, slots=True)
 class Record:
     """One queued fact as a sink receives it: ``at`` is when it was committed (gateway clock)."""
@@ -474,7 +485,7 @@ class Outbox:
             "SELECT id, kind, at, body FROM outbox WHERE id > ? ORDER BY id LIMIT ?",
             (self.cursor(conn, sink), limit),
         ).fetchall()
-        return [Record(i, k, at, json.loads(body)) for i, k, at, body in rows]
+        return [Record(i, k, at, _load(k, body)) for i, k, at, body in rows]
 
     def ack(self, conn: sqlite3.Connection, sink: str, records: Sequence[Record]) -> None:
         """The server acknowledged ``records``: move the cursor past them, forget what all sent."""
@@ -540,7 +551,7 @@ class Outbox:
             )
             rows = c.execute(q + " ORDER BY id", (sink, cause) if cause else (sink,)).fetchall()
             if rows:
-                self._insert(c, [json.loads(body) for _, body in rows])
+                self._insert(c, [_load("requeued", body) for _, body in rows])
                 c.executemany(
                     "DELETE FROM outbox_rejected WHERE sink = ? AND id = ?",
                     [(sink, i) for i, _ in rows],

@@ -347,3 +347,19 @@ def test_standalone_forwarder_refuses_a_missing_store(tmp_path, capsys):
     assert main(["--db", str(tmp_path / "none.db")]) == 1
     out = capsys.readouterr().err
     assert out.startswith("Error: store") and "does not exist" in out
+
+
+def test_a_damaged_row_becomes_a_fact_that_is_set_aside_not_a_stuck_forwarder(db):
+    from gateway.lineprotocol import points_for
+
+    ob = Outbox(db, sinks=["influx"])
+    ob.put(bouts(2))
+    with ob.connect() as c:
+        c.execute("UPDATE outbox SET body = '{not json' WHERE id = 1")
+        c.execute("UPDATE outbox SET body = '[1, 2]' WHERE id = 2")
+        first, second = ob.pending(c, "influx", 10)
+    assert first.fact == {"kind": "damaged", "stored_kind": "bout_closed", "body": "{not json"}
+    assert second.fact["kind"] == "damaged"
+    with pytest.raises(LookupError):  # no converter: the forwarder sets it aside
+        points_for(first.fact, "s")
+    ob.close()
