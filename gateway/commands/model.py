@@ -41,9 +41,9 @@ def describe(model: Any) -> str:
     else:
         lines.append("transitions per hop (rows: from, columns: to):")
         w = max(len(n) for n in c.classes) + 2
-        lines.append(" " * w + "".join(n[:8].rjust(10) for n in c.classes))
+        lines.append(" " * w + "".join(n[:10].rjust(11) for n in c.classes))
         for name, row in zip(c.classes, c.transitions, strict=True):
-            lines.append(name.ljust(w) + "".join(f"{v:10.4f}" for v in row))
+            lines.append(name.ljust(w) + "".join(f"{v:11.6f}" for v in row))
     card = c.card
     lines.append("card:")
     if not card:

@@ -33,7 +33,7 @@ def train(
         help="Comma-separated class names, in output order.",
     ),
     classifier: str = typer.Option("forest", help="forest (random forest) or mlp."),
-    trees: int = typer.Option(60, help="Trees in the random forest."),
+    trees: int = typer.Option(40, help="Trees in the random forest."),
     folds: int = typer.Option(5, help="Cross-validation folds grouped by animal; 0 skips it."),
     max_windows: int = typer.Option(
         60_000, help="Cap on windows used for fitting (split evenly over classes, seeded)."
