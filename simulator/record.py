@@ -247,10 +247,12 @@ def record(
                 if progress:
                     progress(done, total)
     expected = total * days * 86400.0 * herd.hz
+    with (out / "observations.csv").open() as f:
+        n_obs = sum(1 for _ in f) - 1
     return {
         "out": str(out),
         "collars": total,
         "samples": samples,
         "kept_share": round(samples / expected, 4) if expected else math.nan,
-        "observations": sum(1 for _ in (out / "observations.csv").open()) - 1,
+        "observations": n_obs,
     }
