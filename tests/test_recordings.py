@@ -75,6 +75,16 @@ def test_window_with_85_percent_of_one_behaviour_is_labelled() -> None:
     assert counts == Counter({"mixed behaviours": 1, "no observation": 1})
 
 
+def test_behaviours_outside_the_classes_are_counted() -> None:
+    obs = [
+        Observation("cow", "C", 0.0, 20.0, "walking"),
+        Observation("cow", "C", 20.0, 40.0, "resting"),
+    ]
+    counts: Counter[str] = Counter()
+    y, _ = label_windows(obs, np.array([0.0, 10.0, 20.0, 30.0]), 10.0, BEHAVIOURS[:4], 0.8, counts)
+    assert y.tolist() == [-1, -1, 3, 3] and counts["behaviour not in classes"] == 2
+
+
 def test_overlapping_intervals(tmp_path: Path) -> None:
     # Different behaviours at once: windows touching the overlap are dropped and counted;
     # the same behaviour twice is merged.
