@@ -137,6 +137,9 @@ class Client:
     def close(self) -> None:
         self.c.disconnect()
         self.c.loop_stop()
+        # paho 2.x leaves loop_start's wake-up socket pair open until garbage collection,
+        # where it may be finalized before the client closes it (a ResourceWarning).
+        self.c._reset_sockets()
 
 
 @pytest.fixture
@@ -238,6 +241,7 @@ def test_gateway_publishes_outputs_with_last_will(broker, clients):
         assert display.next_payload() == (f"barn/{SITE}/gateway/status", b"offline")
     finally:
         gateway.c.loop_stop()
+        gateway.c._reset_sockets()
 
 
 def test_display_and_simulator_rights(broker, clients):
