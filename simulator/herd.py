@@ -396,10 +396,13 @@ class Herd:
         step = self.block_frames() * self.frame_dt
         t_a = 0.0
         horizon = None if self.end is None else self.end - self.start
+        dropped_day = 0
         while horizon is None or t_a < horizon:
             block = self.generate(t_a, t_a + step)
             t_a += step
-            if not self._keep_history:
+            day = int(t_a // DAY_S)
+            if not self._keep_history and day > dropped_day:  # once a simulated day
+                dropped_day = day
                 self.schedule.drop_before(self.start + t_a - 2 * DAY_S)
             yield block
 

@@ -146,7 +146,7 @@ def publish_shard(
     from gateway.types import Frame
     from gateway.wire import collar_topic, encode_binary, encode_json
 
-    herd = Herd(**herd_kwargs, days=duration_s / 86400.0, shard=shard)
+    herd = Herd(**herd_kwargs, days=duration_s / 86400.0, shard=shard).endless()
     ids = [herd.collar_ids[i] for i in herd.local]
     topics = [collar_topic(prefix, site, c) for c in ids]
     range_g = herd.sensor.range_g
