@@ -213,10 +213,19 @@ def test_bout_values_as_the_servers_hold_them(influxdb1, victoria):
     }
 
 
-def _retained(mosquitto, topic: str, n: int, timeout_s: float = 15.0) -> dict[str, bytes]:
+def _retained(
+    mosquitto, topic: str, n: int, timeout_s: float = 15.0, *, only_retained: bool = True
+) -> dict[str, bytes]:
+    """The latest message per topic a new subscriber gets; ``only_retained`` keeps just those
+    the broker held before we subscribed (a message published meanwhile arrives unflagged)."""
     got: dict[str, bytes] = {}
     sub = mqtt.Client(mqtt.CallbackAPIVersion.VERSION2, client_id=f"late-{uuid.uuid4().hex[:6]}")
-    sub.on_message = lambda c, u, m: got.__setitem__(m.topic, m.payload) if m.retain else None
+
+    def on_message(client, userdata, m) -> None:
+        if m.retain or not only_retained:
+            got[m.topic] = m.payload
+
+    sub.on_message = on_message
     sub.connect(mosquitto.host, mosquitto.port)
     sub.subscribe(topic, qos=1)
     sub.loop_start()
@@ -232,7 +241,8 @@ def test_mqtt_state_is_retained_alerts_carry_the_caution_and_status_goes_offline
     site = f"farm-{uuid.uuid4().hex[:8]}"
     sink = MqttSink(host=mosquitto.host, port=mosquitto.port, site=site, client_id=f"r-{site}")
     sink.open()
-    status = _retained(mosquitto, f"barn/{site}/gateway/status", 1)
+    # open() returns at CONNACK; "online" follows from paho's network thread
+    status = _retained(mosquitto, f"barn/{site}/gateway/status", 1, only_retained=False)
     assert json.loads(status[f"barn/{site}/gateway/status"])["status"] == "online"
     sink.write(records(facts()))
     sink.close()
@@ -272,7 +282,8 @@ def test_mqtt_last_will_says_offline_when_the_gateway_dies(mosquitto, tmp_path):
         try:
             assert p.stdout.readline().strip() == b"up"
             topic = f"barn/{site}/gateway/status"
-            assert json.loads(_retained(mosquitto, topic, 1)[topic])["status"] == "online"
+            online = _retained(mosquitto, topic, 1, only_retained=False)[topic]
+            assert json.loads(online)["status"] == "online"
             p.stdin.write(b"\n")
             p.stdin.flush()
             p.wait(10)
