@@ -452,8 +452,8 @@ def _check(
         p.append(f"seed {seed!r} must be a whole number >= 0.")
     if not num(hz) or not 1.0 <= hz <= 200.0:
         p.append(f"sample rate {hz!r} Hz is not possible; give 1..200 Hz (10, 12.5 or 25 usual).")
-    if not num(start) or start <= 0:
-        p.append(f"start {start!r} must be a positive unix time in seconds.")
+    if not num(start) or not 0 < start < 4102444800:  # 2100-01-01
+        p.append(f"start {start!r} must be a unix time in seconds between 1970 and 2100.")
     if not num(frame_s) or not 0.05 <= frame_s <= 60.0:
         p.append(f"frame length {frame_s!r} s must be between 0.05 and 60 s.")
     elif num(hz) and 1.0 <= hz <= 200.0 and round(hz * frame_s) > 1024:
@@ -472,6 +472,8 @@ def _check(
         p.append("illness, estrus and calving shares add up to more than 1 (one event per animal).")
     if days is not None and (not num(days) or days <= 0):
         p.append(f"days {days!r} must be > 0 (or leave it out for an endless herd).")
+    elif days is not None and days > 366:
+        p.append(f"days {days!r} is more than a year; simulate at most 366 days at a time.")
     if (
         not isinstance(shard, tuple)
         or len(shard) != 2

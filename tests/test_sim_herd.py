@@ -110,6 +110,13 @@ BAD = [
     ({"illness_share": 0.6, "estrus_share": 0.6}, "add up to more than 1"),
     ({"shard": (2, 2)}, "shard"),
     ({"collars": [99]}, "collar indices"),
+    # oversized
+    ({"n_animals": 10**9}, "over the limit of 100000"),
+    ({"days": 1e9}, "more than a year"),
+    ({"hz": 1e6}, "sample rate 1000000.0 Hz"),
+    ({"start": 1e20}, "between 1970 and 2100"),
+    ({"start": float("inf")}, "start inf"),
+    ({"loss": 1e300}, "loss scale"),
 ]
 
 
