@@ -257,3 +257,61 @@ def test_pi_config_holds_no_secrets_and_takes_them_from_the_environment():
     )
     assert s.mqtt.password.get_secret_value() == "from-env"
     assert s.influx.enabled
+
+
+# --------------------------------------------------------------------------- the daemon
+
+
+@pytest.mark.integration
+def test_daemon_speaks_the_units_notify_protocol(mosquitto, notify_socket, tmp_path):
+    # Type=notify and WatchdogSec in the unit: the daemon must say READY=1, ping the watchdog
+    # from its loop at least every half interval, and say STOPPING=1 on SIGTERM.
+    import signal
+    import sys
+    import time
+
+    from gateway.servers import free_port
+
+    path, sock = notify_socket
+    env = {
+        k: v
+        for k, v in os.environ.items()
+        if not k.startswith(("BOUTLINE_", "NOTIFY_", "WATCHDOG_"))
+    }
+    env |= {
+        "NOTIFY_SOCKET": str(path),
+        "WATCHDOG_USEC": "2000000",
+        "BOUTLINE_MQTT_HOST": mosquitto.host,
+        "BOUTLINE_MQTT_PORT": str(mosquitto.port),
+        "BOUTLINE_MQTT_CLIENT_ID": f"notify-test-{os.getpid()}",
+        "BOUTLINE_STORE_DATA_DIR": str(tmp_path / "data"),
+        "BOUTLINE_HTTP_PORT": str(free_port()),
+    }
+    proc = subprocess.Popen(
+        [sys.executable, "-m", "gateway.cli", "run"],
+        env=env,
+        stdout=subprocess.DEVNULL,
+        stderr=subprocess.PIPE,
+    )
+    try:
+        sock.settimeout(60)  # model load and first connect on a loaded machine
+        messages = []
+        while not any(m.startswith(b"READY=1") for m in messages):
+            messages.append(sock.recv(4096))
+        sock.settimeout(5)
+        t0 = time.monotonic()
+        after_ready = []
+        while time.monotonic() - t0 < 3.5:
+            after_ready.append(sock.recv(4096))
+        # About one ping a second for a 2 s watchdog (status lines may come in between).
+        assert after_ready.count(b"WATCHDOG=1") >= 2, after_ready
+        proc.send_signal(signal.SIGTERM)
+        rest = []
+        while b"STOPPING=1" not in rest:
+            rest.append(sock.recv(4096))
+        assert proc.wait(30) == 0
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+            proc.wait(10)
+        proc.stderr.close()
