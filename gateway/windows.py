@@ -30,7 +30,9 @@ animal's windows start on the same instants, multiples of the hop.
   animal silent for longer than a window plus the reorder tolerance (and two frames) has its
   missing time committed as no-data hops while it is silent, not only when it comes back.
   "Now" is the receive time of the freshest frame of any animal, so a gateway behind on its
-  queue does not mistake everybody for silent; after a minute without any frame, the clock.
+  queue does not mistake everybody for silent (after a minute without any frame, the clock),
+  and the last 5 s of it are left open: a frame delayed that much on its way is never late,
+  whatever the speed factor.
 
 >>> import numpy as np
 >>> from gateway.types import Frame
@@ -63,6 +65,7 @@ _DUP_MEMORY = 256  # frames per stream remembered for duplicate detection
 _MAX_PENDING = 64  # frames held for reordering per stream; more is a flood, commit the oldest
 _BURST_S = 60.0  # token bucket depth: a minute of frames at the rate limit
 _GAP_PERIODS = 1.5  # a hole longer than this many sample periods is missing data
+_JITTER_S = 5.0  # gateway seconds a frame may be delayed (broker, queue) and still not be late
 _ALL_SILENT_S = 60.0  # gateway seconds without any frame before silence is judged on the wall clock
 _EPS = 1e-6  # grid rounding slack in samples (float time of ~1.7e9 s has ~2e-7 s resolution)
 
@@ -443,7 +446,11 @@ class Windows:
         for st in self._streams.values():
             if st.head is None or st.last_rx <= 0.0:
                 continue
-            est = st.watermark + (now - st.last_rx) * self.speed  # collar clock now
+            # collar clock now, less what a frame delayed by receive jitter could still cover
+            waited = now - st.last_rx - _JITTER_S
+            if waited <= 0.0:
+                continue
+            est = st.watermark + waited * self.speed
             silence_s = self.window_s + self.reorder_s + 2.0 * st.span_s
             if est - st.watermark <= silence_s:
                 continue

@@ -269,3 +269,28 @@ def test_silent_animal_gets_no_data_while_silent() -> None:
     back = frames(count=20, t0=fs[-1].t + 130.0, seq0=100, rx_delay=0.5)
     assert push_all(w, back) == []
     assert len(w.collect().batch) >= 2
+
+
+def test_accelerated_clock_tolerates_a_few_seconds_of_delivery_jitter() -> None:
+    # 600 collar seconds per gateway second (a fast demo): 3 s of delay on the way is half an
+    # hour of collar time, and must not turn a collar's frames into "late" ones
+    w = windows(speed=600.0, max_frame_rate_hz=1000.0)  # 600 frames/s per collar here
+    a = frames("C1", count=7200, rx_delay=None)
+    b = frames("C2", count=600, rx_delay=None)
+    for f in a + b:
+        f.received_at = T0 + 9000.0 + (f.t_end - T0) / 600.0  # sent after being recorded
+    for f in b[300:]:
+        f.received_at += 3.0  # the second half of cow-2's frames is 3 s late on its way
+    push_all(w, a[:600], "cow-1")
+    push_all(w, b[:300], "cow-2")
+    w.flush_silent(a[599].received_at)
+    assert w.collect().no_data == []
+    assert push_all(w, b[300:600], "cow-2") == []
+    # cow-1 goes on, cow-2 really went quiet: 8 s of its silence is over an hour here
+    assert push_all(w, a[600:], "cow-1") == []
+    assert w.flush_silent(a[-1].received_at) == 1
+    quiet = w.collect().no_data
+    assert {h.animal for h in quiet} == {"cow-2"} and sum(h.duration_s for h in quiet) > 1000
+    # everybody quiet (broker gone): after a minute the gateway clock decides
+    assert w.flush_silent(a[-1].received_at + 30.0) == 0
+    assert w.flush_silent(a[-1].received_at + 90.0) == 2
