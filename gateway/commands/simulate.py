@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import functools
+import inspect
 import math
 import time
 from pathlib import Path
@@ -72,25 +74,43 @@ def _start(text: str | None, default: float) -> float:
     return value
 
 
-def _herd_kwargs(
-    scenario, seed, hz, range_g, roll, loss, silence, illness, estrus, calving, start
-) -> dict:
-    return {
-        "scenario": scenario,
-        "seed": seed,
-        "hz": hz,
-        "range_g": range_g,
-        "random_roll": roll,
-        "loss": loss,
-        "silence_per_day": silence,
-        "illness_share": illness,
-        "estrus_share": estrus,
-        "calving_share": calving,
-        "start": start,
-    }
+# (parameter name, type, option, Herd keyword) of the options both subcommands take
+_HERD_OPTIONS = (
+    ("scenario", str, _SCENARIO, "scenario"),
+    ("seed", int, _SEED, "seed"),
+    ("hz", float, _HZ, "hz"),
+    ("range_g", float, _RANGE, "range_g"),
+    ("roll", bool, _ROLL, "random_roll"),
+    ("loss", float, _LOSS, "loss"),
+    ("silence", float, _SILENCE, "silence_per_day"),
+    ("illness", float, _ILLNESS, "illness_share"),
+    ("estrus", float, _ESTRUS, "estrus_share"),
+    ("calving", float, _CALVING, "calving_share"),
+    ("start", str | None, _START, "start"),
+)
+
+
+def _with_herd_options(fn):
+    """Add the shared herd options to a command; it receives them as ``herd`` keywords
+    for simulator.herd.Herd (``start`` still as given, to be parsed by the command)."""
+    sig = inspect.signature(fn)
+    own = [p for p in sig.parameters.values() if p.name != "herd_opts"]
+    extra = [
+        inspect.Parameter(name, inspect.Parameter.KEYWORD_ONLY, default=opt, annotation=tp)
+        for name, tp, opt, _ in _HERD_OPTIONS
+    ]
+
+    @functools.wraps(fn)
+    def wrapper(**kw):
+        opts = {key: kw.pop(name) for name, _, _, key in _HERD_OPTIONS}
+        return fn(**kw, herd_opts=opts)
+
+    wrapper.__signature__ = sig.replace(parameters=own + extra)
+    return wrapper
 
 
 @app.command("record")
+@_with_herd_options
 def record(
     out: Path = typer.Option(..., "--out", "-o", help="Directory to write the recording to."),
     herd: int = typer.Option(10, "--herd", help="Number of animals (one collar each)."),
@@ -104,17 +124,7 @@ def record(
     overwrite: bool = typer.Option(
         False, "--overwrite", help="Replace an earlier recording in --out."
     ),
-    scenario: str = _SCENARIO,
-    seed: int = _SEED,
-    hz: float = _HZ,
-    range_g: float = _RANGE,
-    roll: bool = _ROLL,
-    loss: float = _LOSS,
-    silence: float = _SILENCE,
-    illness: float = _ILLNESS,
-    estrus: float = _ESTRUS,
-    calving: float = _CALVING,
-    start: str | None = _START,
+    herd_opts: dict | None = None,
 ) -> None:
     """Record a labelled synthetic herd to files for training and evaluation.
 
@@ -131,10 +141,9 @@ def record(
 
     if processes < 0:
         raise ConfigError(f"--processes {processes} must be 0 (one per core) or more")
-    kwargs = _herd_kwargs(
-        scenario, seed, hz, range_g, roll, loss, silence, illness, estrus, calving,
-        _start(start, DEFAULT_START),
-    )  # fmt: skip
+    kwargs = dict(herd_opts or {})
+    kwargs["start"] = _start(kwargs.get("start"), DEFAULT_START)
+    hz = kwargs.get("hz", 10.0)
     t0 = time.monotonic()
     with step_progress("recording collars", max(herd, 1)) as advance:
         summary = do_record(
@@ -156,6 +165,7 @@ def record(
 
 
 @app.command("publish")
+@_with_herd_options
 def publish(
     host: str = typer.Option("127.0.0.1", "--host", help="MQTT broker host."),
     port: int = typer.Option(1883, "--port", help="MQTT broker port."),
@@ -176,17 +186,7 @@ def publish(
         None, "--max-wall", help="Stop after this many wall-clock seconds at the latest."
     ),
     frame_s: float = typer.Option(1.0, "--frame-s", help="Seconds of samples per frame."),
-    scenario: str = _SCENARIO,
-    seed: int = _SEED,
-    hz: float = _HZ,
-    range_g: float = _RANGE,
-    roll: bool = _ROLL,
-    loss: float = _LOSS,
-    silence: float = _SILENCE,
-    illness: float = _ILLNESS,
-    estrus: float = _ESTRUS,
-    calving: float = _CALVING,
-    start: str | None = _START,
+    herd_opts: dict | None = None,
 ) -> None:
     """Publish a synthetic herd's collar frames to an MQTT broker.
 
@@ -204,10 +204,8 @@ def publish(
     now = math.floor(time.time())
     accelerated = flat_out or speed != 1.0
     default_start = now - duration if accelerated else now
-    kwargs = _herd_kwargs(
-        scenario, seed, hz, range_g, roll, loss, silence, illness, estrus, calving,
-        _start(start, default_start),
-    )  # fmt: skip
+    kwargs = dict(herd_opts or {})
+    kwargs["start"] = _start(kwargs.get("start"), default_start)
     kwargs.update(n_animals=herd, frame_s=frame_s)
     console = Console(stderr=True)
     with Progress(
