@@ -469,6 +469,7 @@ class AlertBook:
     def __init__(self) -> None:
         self._open: dict[tuple[str, str], _Open] | None = None
         self._since: dict[tuple[str, str], float] = {}  # raise condition true since
+        self._ready: dict[tuple[str, str], tuple[bool, str]] = {}  # as last written
 
     @staticmethod
     def ensure_schema(conn: sqlite3.Connection) -> None:
@@ -493,10 +494,12 @@ class AlertBook:
         out: list[Alert] = []
         ready_rows = []
         for f in findings:
-            ready_rows.append((f.rule, f.subject, f.animal, int(f.ready), f.reason, now))
+            key = (f.rule, f.subject)
+            if self._ready.get(key) != (f.ready, f.reason):  # write changes only
+                self._ready[key] = (f.ready, f.reason)
+                ready_rows.append((f.rule, f.subject, f.animal, int(f.ready), f.reason, now))
             if not f.ready:
                 continue  # cannot judge: an open alert stays as it is
-            key = (f.rule, f.subject)
             streak = self._since.setdefault if f.raise_ else self._since.pop
             since = streak(key, f.at)
             cur = open_.get(key)
@@ -609,7 +612,7 @@ class AlertBook:
     def readiness(
         conn: sqlite3.Connection, *, animal: str | Iterable[str] | None = None
     ) -> list[dict[str, Any]]:
-        """Rules that could not judge at their last check, with the reason."""
+        """Rules that could not judge at their last check, with the reason and since when."""
         sql = (
             "SELECT rule, subject, animal, reason, checked_at FROM alert_readiness WHERE ready = 0"
         )

@@ -196,6 +196,7 @@ class Analytics:
         if conn.in_transaction:
             conn.execute("ROLLBACK")
         self.engine.forget()  # what the engine holds in memory must follow the database
+        self.collars.unsaved()
 
     # -- reading (for the demo table) -----------------------------------------------------
     def budgets(self, day: str | None = None) -> list[DailyBudget]:

@@ -230,11 +230,12 @@ CREATE TABLE IF NOT EXISTS budget_days (
     no_data_s REAL NOT NULL DEFAULT 0,
     final INTEGER NOT NULL DEFAULT 0,
     updated_at REAL NOT NULL DEFAULT 0,
-    emitted_at REAL NOT NULL DEFAULT -1,
+    unsent INTEGER NOT NULL DEFAULT 1,
     PRIMARY KEY (animal, day)
 ) WITHOUT ROWID;
 CREATE INDEX IF NOT EXISTS budget_days_open ON budget_days (final, end);
 CREATE INDEX IF NOT EXISTS budget_days_day ON budget_days (day);
+CREATE INDEX IF NOT EXISTS budget_days_unsent ON budget_days (animal, day) WHERE unsent = 1;
 CREATE TABLE IF NOT EXISTS budget_behaviours (
     animal TEXT NOT NULL,
     day TEXT NOT NULL,
@@ -372,7 +373,8 @@ class BudgetLedger:
         conn.execute(
             "INSERT INTO budget_days (animal, day, start, end, no_data_s, updated_at)"
             " VALUES (?, ?, ?, ?, ?, ?) ON CONFLICT (animal, day) DO UPDATE SET"
-            " no_data_s = no_data_s + excluded.no_data_s, updated_at = excluded.updated_at",
+            " no_data_s = no_data_s + excluded.no_data_s, updated_at = excluded.updated_at,"
+            " unsent = 1",
             (iv.animal, key, day_s, day_e, no_data, stamp),
         )
         if iv.label != NO_DATA:
@@ -427,17 +429,16 @@ class BudgetLedger:
         ).fetchall()
         for animal, day in rows:
             conn.execute(
-                "UPDATE budget_days SET final = 1, updated_at = ? WHERE animal = ? AND day = ?",
+                "UPDATE budget_days SET final = 1, updated_at = ?, unsent = 1"
+                " WHERE animal = ? AND day = ?",
                 (now, animal, day),
             )
         return [b for a, d in rows for b in self.read(conn, animal=a, day_from=d, day_to=d)]
 
     def changed(self, conn: sqlite3.Connection, now: float) -> list[DailyBudget]:
         """Budgets updated since they last went to the sinks; marks them sent."""
-        rows = conn.execute(
-            "SELECT animal, day FROM budget_days WHERE updated_at > emitted_at"
-        ).fetchall()
-        conn.execute("UPDATE budget_days SET emitted_at = ? WHERE updated_at > emitted_at", (now,))
+        rows = conn.execute("SELECT animal, day FROM budget_days WHERE unsent = 1").fetchall()
+        conn.execute("UPDATE budget_days SET unsent = 0 WHERE unsent = 1")
         return [b for a, d in rows for b in self.read(conn, animal=a, day_from=d, day_to=d)]
 
     def prune(self, conn: sqlite3.Connection, before: float) -> None:

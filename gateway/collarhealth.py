@@ -111,6 +111,7 @@ class CollarTrack:
     recent: dict[int, list[int]] = field(default_factory=dict)
     # hour index -> [sum gy, sum gz, windows]
     roll_hours: dict[int, list[float]] = field(default_factory=dict)
+    dirty_hours: set[int] = field(default_factory=set)  # not saved since they changed
 
     def roll_deg(self, h0: int, h1: int, min_windows: int = 1) -> float | None:
         """Roll (degrees) over hours ``[h0, h1)``: angle of the summed (gy, gz) vector."""
@@ -196,6 +197,7 @@ class CollarHealth:
         b[0] += gy
         b[1] += gz
         b[2] += 1.0
+        tr.dirty_hours.add(h)
         if len(tr.roll_hours) > self.roll_keep_h + 8:
             for old in [k for k in tr.roll_hours if k < h - self.roll_keep_h]:
                 del tr.roll_hours[old]
@@ -298,15 +300,19 @@ class CollarHealth:
                 for s in snap
             ],
         )
-        rows = [
-            (c, h, b[0], b[1], b[2])
-            for c, tr in self.tracks.items()
-            for h, b in tr.roll_hours.items()
-        ]
+        rows = []
+        for c, tr in self.tracks.items():
+            rows += [(c, h, *tr.roll_hours[h]) for h in tr.dirty_hours if h in tr.roll_hours]
+            tr.dirty_hours.clear()
         conn.executemany("INSERT OR REPLACE INTO collar_roll_hours VALUES (?, ?, ?, ?, ?)", rows)
         keep_from = int(now // HOUR_S) - self.roll_keep_h
         conn.execute("DELETE FROM collar_roll_hours WHERE hour < ?", (keep_from,))
         return snap
+
+    def unsaved(self) -> None:
+        """The last save was rolled back: write every roll bin again at the next one."""
+        for tr in self.tracks.values():
+            tr.dirty_hours.update(tr.roll_hours)
 
     def load(self, conn: sqlite3.Connection) -> None:
         """Restore collars saved by ``save`` (counters, battery, roll history)."""

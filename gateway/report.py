@@ -288,7 +288,7 @@ def readiness_rows(src: ReportSource, animals: list[str] | None) -> list[dict[st
             "rule": r["rule"],
             "title": TITLES[Rule(r["rule"])],
             "why": r["reason"],
-            "checked": src.local(r["checked_at"]),
+            "since": src.local(r["checked_at"]),
         }
         for r in AlertBook.readiness(src.conn, animal=animals)
     ]
