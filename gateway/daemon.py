@@ -23,16 +23,18 @@ from collections.abc import Callable, Iterable
 from dataclasses import dataclass, field
 from typing import Any
 
+from .analytics import Analytics
 from .bouts import Event, HerdTracker
 from .config import Settings
 from .errors import StoreError
 from .infer import Inference
 from .ingest import Ingest, Message, collar_filter
 from .model import Model
+from .outbox import GatewayAlert
 from .registry import Registry, load_assignments
 from .store import Store
 from .telemetry import RateLimitedLog, Telemetry
-from .types import Decision, NoDataHop, Posteriors
+from .types import CollarGravity, Decision, NoDataHop, Posteriors
 from .windows import Windows
 from .wire import Limits, Reason, Rejection, decode, parse_topic
 
@@ -70,6 +72,7 @@ class Gateway:
         speed: float | None = 1.0,
         listeners: Iterable[Listener] = (),
         store: Store | None = None,
+        analytics: Analytics | None = None,
     ) -> None:
         self.settings = settings
         self.telemetry = telemetry or Telemetry()
@@ -117,8 +120,13 @@ class Gateway:
         self._touched: set[str] = set()
         self._next_commit = 0.0
         self._store_log = RateLimitedLog(log, 60.0)
+        self._cap_alerted = False  # the collar cap is raised as a gateway alert once per run
         if store is not None:
             self._attach_store(store, assignments)
+        # Budgets, alerts and collar health (gateway/analytics.py) follow the same store.
+        self.analytics = analytics
+        if analytics is not None and store is not None:
+            analytics.attach(store)
 
     def _attach_store(self, store: Store, assignments: list[Any]) -> None:
         """Resume open bouts and states from the store; record the assignments in it."""
@@ -160,7 +168,7 @@ class Gateway:
     def handle(self, messages: Iterable[Message]) -> int:
         """Decode and buffer raw messages; returns how many frames were accepted."""
         prefix, site, limits = self.prefix, self.site, self.limits
-        windows, registry = self.windows, self.registry
+        windows, registry, analytics = self.windows, self.registry, self.analytics
         future, past = self.settings.windows.clock_future_s, self.settings.windows.clock_past_s
         rejects: Counter[str] = Counter()
         accepted = samples = received = 0
@@ -195,6 +203,8 @@ class Gateway:
                 continue
             accepted += 1
             samples += frame.n
+            if analytics is not None:
+                analytics.frame(frame, animal)
         tel = self.telemetry
         tel.messages_in.inc(received)
         tel.frames_in.inc(accepted)
@@ -204,8 +214,22 @@ class Gateway:
             self.rejects[reason] += n
         if rejects.get(Reason.COLLAR_CAP):
             tel.collar_overflow.inc(rejects[Reason.COLLAR_CAP])
+            if not self._cap_alerted:
+                self._collar_cap_alert(rejects[Reason.COLLAR_CAP])
         tel.collars.set(registry.tracked)
         return accepted
+
+    def _collar_cap_alert(self, refused: int) -> None:
+        """Say once that the collar cap is reached: a flood of invented ids, or a too-low cap."""
+        self._cap_alerted = True
+        message = (
+            f"tracking limits.max_collars={self.registry.max_collars} collars: frames from"
+            " further new collars are refused and counted (boutline_collar_overflow_total);"
+            " raise the cap if the herd is that large, else look for a device inventing collar ids"
+        )
+        log.error("collar cap reached: %s", message)
+        if self.store is not None:  # the store hands it to the outputs (MQTT alerts, InfluxDB)
+            self._unstored.append(GatewayAlert("collar_cap", message, time.time(), refused))
 
     def _rejected(self, r: Rejection, payload: bytes, counts: Counter[str]) -> None:
         counts[r.reason] += 1
@@ -231,12 +255,34 @@ class Gateway:
         posts = self.inference.classify(ready.batch)
         if posts:
             self.telemetry.window_latency.set(max(0.0, now - max(p.ready_at for p in posts)))
+            if self.analytics is not None:
+                self._gravity(ready.batch)
         items: list[Posteriors | NoDataHop] = [*posts, *ready.no_data]
         items.sort(key=lambda i: (i.animal, i.t_start if isinstance(i, Posteriors) else i.t))
         result = TickResult(now, windows=len(posts), no_data=len(ready.no_data))
         result.events = self.tracker.push_many(items, result.decisions)
         self._publish(result)
+        self._analytics_tick()
         return result
+
+    def _gravity(self, batch: Any) -> None:
+        """Each classified window's mean acceleration, for the collar-rotation check."""
+        assert self.analytics is not None
+        g = batch.x.mean(axis=2).tolist()  # [N, 3]: the window's static vector, in g
+        t = batch.t_start.tolist()
+        window_s, collar_of = self.model.window_s, self.windows.collar_of
+        for i, animal in enumerate(batch.animals):
+            self.analytics.gravity(
+                CollarGravity(collar_of(animal), animal, t[i], window_s, tuple(g[i]))
+            )
+
+    def _analytics_tick(self) -> None:
+        if self.analytics is None:
+            return
+        try:
+            self.analytics.tick()
+        except StoreError as exc:  # retried at the next tick
+            self._store_log.warning("analytics", "analytics could not write: %s", exc)
 
     def close(
         self, now: float | None = None, *, flush: bool = True, final: bool = False
@@ -259,6 +305,9 @@ class Gateway:
             result.decisions += more.decisions
         if self.store is not None:
             self._commit(full=True)
+        if self.analytics is not None:
+            self._analytics_tick()
+            self.analytics.close()
         return result
 
     def _publish(self, result: TickResult) -> None:

@@ -201,6 +201,11 @@ class Windows:
     def animals(self) -> list[str]:
         return list(self._streams)
 
+    def collar_of(self, animal: str) -> str:
+        """The collar whose frames the animal's stream holds now ('' if none)."""
+        st = self._streams.get(animal)
+        return st.collar if st else ""
+
     def last_seen(self, animal: str) -> float:
         """Gateway time of the animal's latest accepted frame (0 if never)."""
         st = self._streams.get(animal)

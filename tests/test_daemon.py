@@ -317,3 +317,24 @@ def test_store_gets_bouts_and_a_restart_resumes_the_open_bout(tmp_path: Path) ->
     assert [b for b, _, _ in bouts] == ["resting", "walking"]
     assert bouts[0][1] == pytest.approx(2.5, abs=5.0) and bouts[0][2] == pytest.approx(600, abs=5.0)
     assert bouts[1][2] == pytest.approx(900, abs=10.0)
+
+
+def test_analytics_follow_the_gateway_budgets_and_collar_health(tmp_path: Path) -> None:
+    from gateway.analytics import Analytics
+    from gateway.store import Store
+
+    cfg = settings(tmp_path)
+    # an hour of ruminating then an hour of walking, ending a day: bouts close, minutes count
+    frames = script("C1", [("ruminating", 3600), ("walking", 3600)])
+    with Store.open(tmp_path / "data" / "boutline.db") as store:
+        analytics = Analytics(cfg, speed=None)
+        gw = Gateway(cfg, store=store, analytics=analytics, speed=None)
+        for k in range(0, len(frames), 60):
+            gw.handle(msg(f) for f in frames[k : k + 60])
+            gw.tick(now=frames[k + 59].t_end)
+        budgets = {b.animal: b for b in analytics.budgets("2026-01-01")}
+        gw.close(now=frames[-1].t_end, final=True)
+    b = budgets["C1"]
+    # bouts close after their criterion; the ruminating hour is accounted for by now
+    assert b.minutes.get("ruminating", 0.0) == pytest.approx(60.0, abs=1.0)
+    assert b.bouts.get("ruminating") == 1

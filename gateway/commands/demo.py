@@ -129,7 +129,18 @@ class HerdView:
         self.classes = classes
         self.animals: dict[str, _Animal] = {}
         self.sim_now = 0.0
+        self.alerts: dict[str, list[str]] = {}
+        self.alerts_raised = 0
         self._lock = threading.Lock()
+
+    def set_alerts(self, open_alerts: Any) -> None:
+        """Open alerts (rows of ``Analytics.open_alerts``), shown by rule per animal."""
+        by: dict[str, list[str]] = defaultdict(list)
+        for a in open_alerts:
+            by[a["animal"] or a["collar"]].append(str(a["rule"]).replace("_", " "))
+        with self._lock:
+            self.alerts = dict(by)
+            self.alerts_raised = max(self.alerts_raised, sum(len(v) for v in by.values()))
 
     def __call__(self, result: Any) -> None:
         with self._lock:
@@ -193,7 +204,7 @@ def _table(view: HerdView, status: dict[str, Any], title: str) -> Any:
             _hhmm(since),
             *cells,
             f"{minutes.get(NO_DATA, 0.0):.0f}",
-            status.get("alerts", {}).get(name, ""),
+            ", ".join(view.alerts.get(name, [])),
         )
     return table
 
@@ -219,6 +230,7 @@ def run_demo(
     from simulator.herd import Herd
     from simulator.publish import publish_shard
 
+    from ..analytics import Analytics
     from ..config import Settings
     from ..daemon import Gateway
     from ..errors import ConfigError
@@ -287,14 +299,24 @@ def run_demo(
     interrupted = False
     wall0 = time.monotonic()
     try:
-        gateway = Gateway(settings, store=store, speed=speed, telemetry=telemetry)
+        analytics = Analytics(settings, speed=speed)
+        gateway = Gateway(
+            settings, store=store, speed=speed, telemetry=telemetry, analytics=analytics
+        )
         view = HerdView(gateway.model.classes)
         gateway.listeners.append(view)
         ingest = Ingest(settings.mqtt, topic_filter=gateway.topic_filter, telemetry=telemetry)
 
+        next_alerts = [0.0]
+
+        def alerts_now(result: Any) -> None:  # in the gateway's thread, which owns the store
+            if time.monotonic() >= next_alerts[0]:
+                next_alerts[0] = time.monotonic() + 1.0
+                view.set_alerts(analytics.open_alerts())
+
         def gw_main() -> None:
             try:
-                gateway.run(stop_gw, ingest=ingest, tick_s=0.25)
+                gateway.run(stop_gw, ingest=ingest, tick_s=0.25, on_tick=alerts_now)
             except BaseException as exc:  # noqa: BLE001 - shown by the main thread
                 gw_error.append(exc)
 
@@ -417,7 +439,7 @@ def _summary(gateway: Any, view: HerdView, store: Any, pub_state: dict, wall_s: 
         "windows_classified": s["windows_classified"],
         "bouts_stored": bouts,
         "minutes": view.totals(),
-        "store": str(store.path),
+        "store": str(Path(store.path).resolve()),
         "wall_s": wall_s,
         "simulated_s": pub_state["sim_s"],
     }

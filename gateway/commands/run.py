@@ -56,6 +56,7 @@ def run(
 
 def serve(settings: Any, stop: threading.Event, *, install_sighup: bool = True) -> dict[str, Any]:
     """Store, outputs, HTTP and the pipeline loop until ``stop``; returns the last status."""
+    from ..analytics import Analytics
     from ..daemon import Gateway
     from ..http import Health, HttpEndpoint
     from ..ingest import Ingest
@@ -70,10 +71,12 @@ def serve(settings: Any, stop: threading.Event, *, install_sighup: bool = True) 
     )
     outputs = http = None
     try:
-        gateway = Gateway(settings, store=store)
+        analytics = Analytics(settings, speed=1.0)
+        gateway = Gateway(settings, store=store, analytics=analytics)
         tel = gateway.telemetry
         outputs = Outputs.from_settings(settings, store.path, registry=tel.registry)
         store.add_listener(outputs.listener)
+        analytics.add_fact_listener(outputs.listener)
         for problem in outputs.start():
             log.warning("output not working yet (retrying in the background): %s", problem)
         ingest = Ingest(settings.mqtt, topic_filter=gateway.topic_filter, telemetry=tel)
