@@ -534,13 +534,8 @@ class BudgetLedger:
         return dict(zip(("through", "inactive_since", "state", "state_since"), row, strict=True))
 
     def animals(self, conn: sqlite3.Connection) -> list[str]:
-        """Every animal with a budget or a cursor."""
-        return [
-            r[0]
-            for r in conn.execute(
-                "SELECT animal FROM budget_cursor UNION SELECT animal FROM budget_days ORDER BY 1"
-            )
-        ]
+        """Every animal the ledger has seen (each has a cursor)."""
+        return [r[0] for r in conn.execute("SELECT animal FROM budget_cursor ORDER BY 1")]
 
 
 def _order(behaviour: str) -> tuple[int, str]:
