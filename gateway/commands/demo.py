@@ -193,7 +193,7 @@ def _table(view: HerdView, status: dict[str, Any], title: str) -> Any:
     table.add_column("behaviour")
     table.add_column("since", justify="right")
     for c in view.classes:
-        table.add_column(f"{c[:10]} min", justify="right")
+        table.add_column(c[:10], justify="right")
     table.add_column("no data", justify="right")
     table.add_column("alerts")
     for name, behaviour, since, minutes in view.rows():
@@ -353,7 +353,7 @@ def run_demo(
         pub_thread = threading.Thread(target=pub_main, name="simulator", daemon=True)
         pub_thread.start()
         pace = "flat out" if speed is None else f"{speed:g}x"
-        title = f"Boutline demo: {herd} animals on {SITE}, {pace}"
+        title = f"Boutline demo: {herd} animals on {SITE}, {pace}; minutes today per behaviour"
 
         def status() -> dict[str, Any]:
             s = gateway.status()
@@ -452,6 +452,7 @@ def _print_summary(console: Any, summary: dict[str, Any], view: HerdView) -> Non
 
     if not summary:
         return
+    console.print()
     t = Table(title="Minutes per behaviour over the run (smoothed, per animal)")
     t.add_column("animal")
     for c in view.classes:
