@@ -122,8 +122,8 @@ class ReportSource:
 
     def animals(self) -> list[str]:
         names = {a for a, _, _ in self.store.animals()}
-        if self.has("budget_days"):
-            names.update(r[0] for r in self.conn.execute("SELECT DISTINCT animal FROM budget_days"))
+        if self.has("budget_cursor"):
+            names.update(r[0] for r in self.conn.execute("SELECT animal FROM budget_cursor"))
         if self.has("collar_health"):
             names.update(
                 r[0] for r in self.conn.execute("SELECT DISTINCT animal FROM collar_health") if r[0]
@@ -146,7 +146,7 @@ class ReportSource:
 
     def last_day(self) -> date:
         """The newest day with anything in it (budgets, bouts, alerts, collars), else today."""
-        times = [r[0] for r in self.conn.execute("SELECT MAX(end) FROM bouts")]
+        times = [seen for _, _, seen in self.store.animals()]  # small table, not the bouts
         for table, col in (("alerts", "updated_at"), ("collar_health", "updated_at")):
             if self.has(table):
                 times += [r[0] for r in self.conn.execute(f"SELECT MAX({col}) FROM {table}")]
