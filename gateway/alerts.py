@@ -56,9 +56,10 @@ __all__ = [
     "TITLES",
 ]
 
+# The same words as the command line's (gateway/cli.py), so every place says one thing.
 CAUTION = (
-    "Decision support, not a diagnosis: examine the animal and consult a veterinarian;"
-    " local regulations and licensed veterinary practice prevail."
+    "Alerts are decision support, not a diagnosis: examine the animal and consult a"
+    " veterinarian; local regulations and licensed veterinary practice prevail."
 )
 
 

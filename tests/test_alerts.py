@@ -282,3 +282,9 @@ def test_settings_refuse_thresholds_without_hysteresis() -> None:
         AlertsSettings(rumination_drop=0.2, rumination_clear=0.25)
     with pytest.raises(ValueError, match="min_baseline_days"):
         AlertsSettings(baseline_days=5, min_baseline_days=6)
+
+
+def test_the_caution_is_the_command_lines() -> None:
+    from gateway.cli import CAUTION as CLI_CAUTION
+
+    assert CAUTION == CLI_CAUTION
