@@ -344,7 +344,7 @@ class Gateway:
         stop: threading.Event,
         *,
         ingest: Ingest | None = None,
-        tick_s: float = 0.5,
+        tick_s: float = 0.1,
         on_tick: Callable[[TickResult], None] | None = None,
     ) -> Ingest:
         """Subscribe and work until ``stop`` is set; raises BrokerAuthError if refused."""
