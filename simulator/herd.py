@@ -50,6 +50,7 @@ __all__ = ["DEFAULT_START", "FrameBlock", "Herd", "SCENARIO_CHOICES", "animal_id
 DEFAULT_START = 1772323200.0
 SCENARIO_CHOICES = ("housed", "pasture", "mixed")
 _MAX_SAMPLES_PER_BLOCK = 1_500_000
+_STREAM_REFIT = 51
 
 
 def animal_id(i: int) -> str:
@@ -105,6 +106,7 @@ class Herd:
         illness_share: float = 0.0,
         estrus_share: float = 0.0,
         calving_share: float = 0.0,
+        refit_share: float = 0.0,
         days: float | None = None,
         shard: tuple[int, int] = (0, 1),
         collars: list[int] | None = None,
@@ -113,6 +115,8 @@ class Herd:
             n_animals, scenario, seed, hz, start, frame_s, range_g, loss, silence_per_day,
             illness_share, estrus_share, calving_share, days, shard,
         )  # fmt: skip
+        if not isinstance(refit_share, int | float) or not 0 <= refit_share <= 1:
+            problems.append(f"refit share {refit_share!r} must be between 0 and 1.")
         if collars is not None and (
             not len(collars) or min(collars) < 0 or max(collars) >= n_animals
         ):
@@ -139,7 +143,9 @@ class Herd:
         self.samples_per_frame = max(1, int(round(self.hz * self.frame_s)))
         self.frame_dt = self.samples_per_frame / self.hz
         self.animal_ids = [animal_id(i) for i in range(self.n_animals)]
-        self.collar_ids = [collar_id(i) for i in range(self.n_animals)]
+        span_days = self.days if self.days else 7.0
+        self.refit_share = float(refit_share)
+        self._draw_refits(self.refit_share, span_days)
         names = ["housed", "pasture"]
         if scenario == "mixed":
             per_animal = np.arange(self.n_animals) % 2
@@ -148,11 +154,15 @@ class Herd:
         self.scenario_of = [names[j] for j in per_animal]
         self._scenarios = [SCENARIOS[x] for x in names]
         k, p = self.shard
-        self.local = (
+        # the animals this herd object makes (a shard or an explicit subset) ...
+        self.local_animals = (
             np.arange(k, self.n_animals, p)
             if collars is None
             else np.unique(np.asarray(collars, dtype=np.int64))
         )
+        # ... and their collars: ``local`` indexes collar_ids, FrameBlock.row indexes local
+        self.local = np.flatnonzero(np.isin(self.collar_animal, self.local_animals))
+        self._collar_arow = np.searchsorted(self.local_animals, self.collar_animal[self.local])
         self.events = health.draw_events(
             seed=self.seed,
             animal_ids=self.animal_ids,
@@ -167,22 +177,48 @@ class Herd:
             "estrus": float(estrus_share),
             "calving": float(calving_share),
         }
-        local_set = set(self.local.tolist())
+        local_set = set(self.local_animals.tolist())
         self._local_events = [e for e in self.events if e.animal_index in local_set]
-        self._scenario_by_index = {int(i): SCENARIOS[self.scenario_of[int(i)]] for i in self.local}
+        self._scenario_by_index = {
+            int(i): SCENARIOS[self.scenario_of[int(i)]] for i in self.local_animals
+        }
         self._builder = ScheduleBuilder(
             seed=self.seed,
-            animals=self.local,
-            scenario_idx=per_animal[self.local],
+            animals=self.local_animals,
+            scenario_idx=per_animal[self.local_animals],
             scenarios=self._scenarios,
             start=self.start,
             n_animals_total=self.n_animals,
         )
         self.schedule = Schedule(epoch=self.start, n_animals=self.n_animals, seed=self.seed)
         self._covered = self.start
-        self._sig = draw_signal_traits(self.seed, self.local)
+        self._sig = draw_signal_traits(self.seed, self.local_animals)
         self._col = sensor.draw_collar_traits(self.seed, self.local, self.sensor, self.frame_dt)
+        self._fit_from = self.collar_from[self.local]
+        self._fit_to = self.collar_to[self.local]
         self._keep_history = True
+
+    def _draw_refits(self, share: float, span_days: float) -> None:
+        """Collar table: collar i on animal i from the start; for ``share`` of the animals
+        (at least one day in) a spare collar replaces it at a random time."""
+        n = self.n_animals
+        k = rand.key(self.seed, _STREAM_REFIT)
+        order = np.sort(
+            np.argsort(rand.uniform(k, np.arange(n)), kind="stable")[: round(share * n)]
+        )
+        at = np.round((0.1 + 0.8 * rand.uniform(k, order + 10**6)) * span_days * DAY_S)
+        m = len(order)
+        self.collar_ids = [collar_id(i) for i in range(n + m)]
+        self.collar_animal = np.concatenate([np.arange(n), order]).astype(np.int64)
+        self.collar_from = np.concatenate([np.zeros(n), at])  # seconds since the start
+        self.collar_to = np.full(n + m, np.inf)
+        self.collar_to[order] = at
+        self.refits = [
+            {"animal": self.animal_ids[int(a)], "old_collar": self.collar_ids[int(a)],
+             "new_collar": self.collar_ids[n + j], "at": float(self.start + at[j]),
+             "at_iso": _iso(self.start + at[j])}
+            for j, a in enumerate(order)
+        ]  # fmt: skip
 
     # ----------------------------------------------------------------- ground truth
     @property
@@ -194,11 +230,15 @@ class Herd:
     def assignments(self) -> list[dict[str, str]]:
         """Collar <-> animal fittings: ``collar, animal, from, to`` (ISO 8601 UTC; empty
         ``to`` means still fitted)."""
-        return [
-            {"collar": self.collar_ids[i], "animal": self.animal_ids[i],
-             "from": _iso(self.start), "to": ""}
-            for i in range(self.n_animals)
-        ]  # fmt: skip
+        rows = []
+        for c, a in enumerate(self.collar_animal.tolist()):
+            to = self.collar_to[c]
+            rows.append(
+                {"collar": self.collar_ids[c], "animal": self.animal_ids[a],
+                 "from": _iso(self.start + self.collar_from[c]),
+                 "to": "" if math.isinf(to) else _iso(self.start + to)}
+            )  # fmt: skip
+        return rows
 
     def ensure_schedule(self, until: float) -> None:
         """Generate behaviour schedules up to unix time ``until``."""
@@ -222,7 +262,7 @@ class Herd:
         self.ensure_schedule(t1)
         sch = self.schedule
         out: list[tuple] = []
-        for i in self.local:
+        for i in self.local_animals:
             s, e, st = sch.for_animal(int(i))
             s, e = np.maximum(s, t0), np.minimum(e, t1)
             b = BEHAVIOUR_OF_STATE[st]
@@ -233,11 +273,15 @@ class Herd:
             new = np.concatenate([[True], (b[1:] != b[:-1]) | (s[1:] > e[:-1] + 1e-6)])
             starts = np.flatnonzero(new)
             ends = np.concatenate([starts[1:], [len(s)]]) - 1
-            for j0, j1 in zip(starts, ends, strict=True):
-                out.append(
-                    (self.animal_ids[i], self.collar_ids[i], float(s[j0]), float(e[j1]),
-                     BEHAVIOURS[int(b[j0])])
-                )  # fmt: skip
+            # each interval under the collar the animal wore then (split at a refit)
+            for c in np.flatnonzero(self.collar_animal == i):
+                f0 = self.start + self.collar_from[c]
+                f1 = self.start + self.collar_to[c]
+                for j0, j1 in zip(starts, ends, strict=True):
+                    a, z = max(float(s[j0]), f0), min(float(e[j1]), f1)
+                    if z > a:
+                        beh = BEHAVIOURS[int(b[j0])]
+                        out.append((self.animal_ids[i], self.collar_ids[c], a, z, beh))
         return out
 
     def budgets(self) -> list[tuple[str, str, str, float]]:
@@ -251,7 +295,7 @@ class Herd:
         while d < self.end:
             mins = self.schedule.minutes(max(d, self.start), min(d + DAY_S, self.end))
             day = datetime.fromtimestamp(d, UTC).strftime("%Y-%m-%d")
-            for i in self.local:
+            for i in self.local_animals:
                 for j, b in enumerate(BEHAVIOURS):
                     out.append((self.animal_ids[i], day, b, round(float(mins[i, j]), 3)))
             d += DAY_S
@@ -275,6 +319,7 @@ class Herd:
                 "loss_scale": self.loss,
                 "mean_frame_loss": round(self.sensor.loss.mean_loss, 5),
                 "silence_per_day": self.sensor.silence_per_day,
+                "refit_share": self.refit_share,
                 "shares": self.shares,
             },
             "animals": [
@@ -284,7 +329,8 @@ class Herd:
                     "scenario": self.scenario_of[i],
                 }
                 for i in range(self.n_animals)
-            ],  # fmt: skip
+            ],
+            "refits": self.refits,  # fmt: skip
             "events": [e.to_json() for e in self.events],
             "time": "unix seconds, UTC; the simulator treats UTC as the farm's local time",
         }
@@ -303,6 +349,14 @@ class Herd:
     def _true(self, rows: np.ndarray, c_t: np.ndarray) -> np.ndarray:
         c = self._col
         return (c_t - c.clock_off_s[rows]) / (1.0 + c.clock_ppm[rows] * 1e-6)
+
+    def _first_frame(self, rows: np.ndarray) -> np.ndarray:
+        """Frame number of each collar's first frame: its first sample is taken once the
+        collar is on the animal (at the start, or at the refit)."""
+        col = self._col
+        c_fit = self._clock(rows, self._fit_from[rows])
+        k = np.ceil((c_fit - col.phase_s[rows]) / self.frame_dt - 1e-9).astype(np.int64)
+        return np.maximum(k, 0)
 
     def generate(
         self, t_a: float, t_b: float, rows: np.ndarray | None = None, *, samples: bool = True
@@ -330,13 +384,13 @@ class Herd:
         # frame k of a collar is sent when its last sample is done: phase + (k+1)*fdt
         c_a = self._clock(rows, np.full(rows.shape, t_a))
         k_lo = np.ceil((c_a - col.phase_s[rows]) / fdt - 1.0 - 1e-9).astype(np.int64)
-        k_first = np.ceil((col.clock_off_s[rows] - col.phase_s[rows]) / fdt).astype(np.int64)
-        k_lo = np.maximum(k_lo, np.maximum(k_first, 0))  # seq counts from 0
+        k_lo = np.maximum(k_lo, self._first_frame(rows))
         span = int(np.ceil((t_b - t_a) / fdt * (1 + 1e-4))) + 2
         kk = k_lo[:, None] + np.arange(span)[None, :]
         rr = np.broadcast_to(rows[:, None], kk.shape)
         sent = self._true(rr, col.phase_s[rr] + (kk + 1) * fdt)
-        ok = (sent >= t_a) & (sent < t_b)
+        # sent inside the block, and while the collar is on its animal
+        ok = (sent >= t_a) & (sent < t_b) & (sent <= self._fit_to[rr])
         r, k, sent = rr[ok], kk[ok], sent[ok]
         keep = ~sensor.frame_lost(col, r, k, self.sensor.loss)
         keep &= ~sensor.silent(col, r, sent, self.start, self.sensor.silence_per_day)
@@ -348,9 +402,10 @@ class Herd:
         f = r.shape[0]
         if f == 0:
             return _empty_block(n)
+        seq = k - self._first_frame(r)  # a collar counts its frames from 0
         if not samples:
             t0 = col.phase_s[r] + k * fdt + self.start
-            return FrameBlock(r, k, sent + self.start, t0, np.zeros((f, 0, 3), np.float32), batt)
+            return FrameBlock(r, seq, sent + self.start, t0, np.zeros((f, 0, 3), np.float32), batt)
         # sample times: on the collar clock a regular grid, in true time slightly stretched
         samp = k[:, None] * n + np.arange(n)[None, :]
         c_t = col.phase_s[r][:, None] + samp / self.hz
@@ -362,7 +417,7 @@ class Herd:
         acc = self._acc(rs, t_true, samp.reshape(-1), roll, bias)
         return FrameBlock(
             row=r,
-            seq=k,
+            seq=seq,
             sent=sent + self.start,
             t=c_t[:, 0] + self.start,
             acc=acc.reshape(f, n, 3),
@@ -374,7 +429,8 @@ class Herd:
         t_abs = t_true + self.start
         self.ensure_schedule(float(t_abs.max()) + 1.0)
         sch = self.schedule
-        animal = self.local[rs]
+        arow = self._collar_arow[rs]  # the animal each collar is on, as a local row
+        animal = self.local_animals[arow]
         idx, found = sch.lookup(animal, t_abs)
         state = np.where(found, sch.state[idx], State.REST_L)
         b0 = np.where(found, sch.start[idx], t_abs) - self.start
@@ -382,7 +438,7 @@ class Herd:
         has_prev = found & (idx > 0) & (sch.animal[prev_i] == animal)
         prev = np.where(has_prev, sch.state[prev_i], state)
         a = neck_acceleration(
-            self._sig, rs, t_true, state, prev, b0, idx, sch.bout_u, sch.bout_z, roll
+            self._sig, arow, t_true, state, prev, b0, idx, sch.bout_u, sch.bout_z, roll
         )
         a += bias
         # motion noise of the behaviour and the sensor's own white noise, in one draw

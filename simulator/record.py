@@ -11,7 +11,8 @@ Layout (read by gateway.recordings and by researchers' own tools)::
 
 Sample times are the collar's own clock (drift and offset included) and frames lost on the
 radio or while a collar was silent are gaps, as a gateway would have stored them. Collars are
-generated one per task on a process pool; each collar's numbers do not depend on the pool.
+generated one animal (with the collars it wore) per task on a process pool; the numbers do
+not depend on the pool.
 
 >>> fixed_decimals(np.array([12345, -5, 0, -80000]), 4)
 [b'1.2345', b'-0.0005', b'0.0000', b'-8.0000']
@@ -120,38 +121,41 @@ def write_raw_csv(path: Path, t: np.ndarray, acc: np.ndarray, append: bool = Fal
             f.write(_csv_bytes(t[i : i + 200_000], acc[i : i + 200_000]))
 
 
-def _record_collar(spec: dict, collar: int, out: str, fmt: str) -> int:
-    """Worker: generate one collar's whole recording and write its file(s)."""
-    herd = Herd(**spec, collars=[collar])
-    cid = herd.collar_ids[collar]
+def _record_animal(spec: dict, animal: int, out: str, fmt: str) -> int:
+    """Worker: generate the recording of every collar one animal wore; write their files."""
+    herd = Herd(**spec, collars=[animal])
     span = herd.days * 86400.0
-    step = max(60.0, _SAMPLES_PER_CALL / herd.hz)
-    ts, accs = [], []
-    raw = Path(out) / "raw" / f"{cid}.csv"
+    n = herd.samples_per_frame
+    step = max(60.0, _SAMPLES_PER_CALL / (herd.hz * len(herd.local)))
+    ids = [herd.collar_ids[c] for c in herd.local]
+    ts: dict[int, list[np.ndarray]] = {r: [] for r in range(len(ids))}
+    accs: dict[int, list[np.ndarray]] = {r: [] for r in range(len(ids))}
+    started: set[int] = set()
     n_total = 0
     t_a = 0.0
-    first = True
     while t_a < span:
         b = herd.generate(t_a, min(t_a + step, span))
         t_a += step
-        if not len(b):
-            continue
-        n = herd.samples_per_frame
-        t = (b.t[:, None] + np.arange(n)[None, :] / herd.hz).reshape(-1)
-        acc = b.acc.reshape(-1, 3)
-        n_total += t.shape[0]
-        if fmt in ("csv", "both"):
-            write_raw_csv(raw, t, acc, append=not first)
-            first = False
+        for r in range(len(ids)):
+            m = b.row == r
+            if not m.any():
+                continue
+            t = (b.t[m][:, None] + np.arange(n)[None, :] / herd.hz).reshape(-1)
+            acc = b.acc[m].reshape(-1, 3)
+            n_total += t.shape[0]
+            if fmt in ("csv", "both"):
+                write_raw_csv(Path(out) / "raw" / f"{ids[r]}.csv", t, acc, append=r in started)
+                started.add(r)
+            if fmt in ("npz", "both"):
+                ts[r].append(t)
+                accs[r].append(acc)
+    for r, cid in enumerate(ids):
+        if fmt in ("csv", "both") and r not in started:
+            write_raw_csv(Path(out) / "raw" / f"{cid}.csv", np.zeros(0), np.zeros((0, 3)))
         if fmt in ("npz", "both"):
-            ts.append(t)
-            accs.append(acc)
-    if fmt in ("csv", "both") and first:
-        write_raw_csv(raw, np.zeros(0), np.zeros((0, 3), np.float32))
-    if fmt in ("npz", "both"):
-        t = np.concatenate(ts) if ts else np.zeros(0)
-        acc = np.concatenate(accs) if accs else np.zeros((0, 3), np.float32)
-        np.savez(Path(out) / "compact" / f"{cid}.npz", t=t, acc=acc, hz=np.float64(herd.hz))
+            t = np.concatenate(ts[r]) if ts[r] else np.zeros(0)
+            acc = np.concatenate(accs[r]) if accs[r] else np.zeros((0, 3), np.float32)
+            np.savez(Path(out) / "compact" / f"{cid}.npz", t=t, acc=acc, hz=np.float64(herd.hz))
     return n_total
 
 
@@ -210,7 +214,7 @@ def record(
     """Write a labelled recording of a simulated herd to ``out``; returns a summary.
 
     ``herd_kwargs`` go to :class:`simulator.herd.Herd` (scenario, seed, hz, range_g, ...).
-    ``progress(done, total)`` is called as collars finish.
+    ``progress(done, total)`` is called as animals finish (with all their collars).
     """
     if fmt not in FORMATS:
         raise ConfigError(f"unknown format {fmt!r}; choose csv, npz or both.")
@@ -233,14 +237,14 @@ def record(
         progress(0, total)
     if procs == 1:
         for i in range(total):
-            samples += _record_collar(spec, i, str(out), fmt)
+            samples += _record_animal(spec, i, str(out), fmt)
             done += 1
             if progress:
                 progress(done, total)
     else:
         ctx = mp.get_context("spawn")
         with ProcessPoolExecutor(max_workers=procs, mp_context=ctx) as pool:
-            futs = [pool.submit(_record_collar, spec, i, str(out), fmt) for i in range(total)]
+            futs = [pool.submit(_record_animal, spec, i, str(out), fmt) for i in range(total)]
             for fut in as_completed(futs):
                 samples += fut.result()
                 done += 1
@@ -251,7 +255,8 @@ def record(
         n_obs = sum(1 for _ in f) - 1
     return {
         "out": str(out),
-        "collars": total,
+        "animals": total,
+        "collars": len(herd.collar_ids),
         "samples": samples,
         "kept_share": round(samples / expected, 4) if expected else math.nan,
         "observations": n_obs,

@@ -159,6 +159,46 @@ def test_cli_publish_bad_input_is_one_error_line(capsys) -> None:
     assert err == ["Error: herd size -1 is not possible; give a whole number of animals >= 1."]
 
 
+def test_refits_hand_an_animal_to_a_spare_collar() -> None:
+    from gateway.registry import Registry, parse_assignments_csv
+
+    h = Herd(10, seed=6, days=1, refit_share=0.3, loss=0.0, silence_per_day=0.0)
+    assert h.collar_ids[10:] == ["C0011", "C0012", "C0013"] and len(h.refits) == 3
+    rows = h.assignments
+    text = "collar,animal,from,to\n" + "".join(
+        f"{r['collar']},{r['animal']},{r['from']},{r['to']}\n" for r in rows
+    )
+    reg = Registry(parse_assignments_csv(text))  # the gateway's own checks: no overlaps
+    b = h.generate(0.0, 86400.0, samples=False)
+    for ref in h.refits:
+        old, new = h.collar_ids.index(ref["old_collar"]), h.collar_ids.index(ref["new_collar"])
+        at = ref["at"]
+        old_sent = b.sent[b.row == np.flatnonzero(h.local == old)[0]]
+        new_rows = b.row == np.flatnonzero(h.local == new)[0]
+        assert old_sent.max() <= at < b.sent[new_rows].min() <= at + 3.0
+        assert b.seq[new_rows][0] == 0  # a collar counts its frames from its own start
+        assert reg.resolve(ref["new_collar"], at + 60.0) == ref["animal"]
+        assert reg.resolve(ref["old_collar"], at - 60.0) == ref["animal"]
+        obs = [o for o in h.observations() if o[0] == ref["animal"]]
+        assert {o[1] for o in obs} == {ref["old_collar"], ref["new_collar"]}
+        assert all((o[3] <= at) if o[1] == ref["old_collar"] else (o[2] >= at) for o in obs)
+    # an animal behaves the same whether or not its collar was replaced
+    plain = Herd(10, seed=6, days=1)
+    assert [o[2:] for o in plain.observations()] == [
+        o[2:] for o in _merge_at_refits(h.observations())
+    ]
+
+
+def _merge_at_refits(obs: list[tuple]) -> list[tuple]:
+    out: list[tuple] = []
+    for o in obs:
+        if out and out[-1][0] == o[0] and out[-1][4] == o[4] and abs(out[-1][3] - o[2]) < 1e-6:
+            out[-1] = (o[0], o[1], out[-1][2], o[3], o[4])
+        else:
+            out.append(o)
+    return out
+
+
 @pytest.mark.parametrize("module", [herd, rand, record, schedule, sensor, signal, health])
 def test_docstring_examples_run(module) -> None:
     res = doctest.testmod(module, optionflags=doctest.ELLIPSIS)

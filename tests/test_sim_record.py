@@ -45,7 +45,7 @@ def test_layout_and_headers(rec) -> None:
     assert _csv_rows(out / "assignments.csv")[0] == {
         "collar": "C0001", "animal": "cow-001", "from": "2026-03-01T00:00:00Z", "to": ""
     }  # fmt: skip
-    assert summary["collars"] == 3 and 0.9 < summary["kept_share"] <= 1.0
+    assert summary["collars"] == 3 == summary["animals"] and 0.9 < summary["kept_share"] <= 1.0
     line = (out / "raw" / "C0002.csv").read_text().splitlines()[1]
     t, *a = line.split(",")
     assert len(t.split(".")[1]) == 3 and all(len(x.split(".")[1]) == 4 for x in a)
@@ -133,6 +133,19 @@ def test_refuses_to_overwrite_unless_asked(tmp_path: Path) -> None:
         record(tmp_path / "file", **small)
 
 
+def test_refitted_collars_get_their_own_files_and_agree_with_assignments(tmp_path) -> None:
+    out = tmp_path / "refit"
+    summary = record(out, n_animals=3, days=0.05, seed=4, refit_share=0.34, processes=1)
+    assert summary["animals"] == 3 and summary["collars"] == 4
+    assert sorted(p.stem for p in (out / "compact").iterdir()) == [
+        "C0001", "C0002", "C0003", "C0004"
+    ]  # fmt: skip
+    rs = open_recordings(out)
+    assert not rs.counts  # every observation agrees with the assignments
+    doc = json.loads((out / "herd.json").read_text())
+    assert doc["refits"][0]["new_collar"] == "C0004"
+
+
 def test_fixed_point_writer_agrees_with_python_formatting() -> None:
     rng = np.random.default_rng(0)
     v = np.concatenate([rng.integers(-80000, 80000, 2000), [0, 1, -1, 9999, -10000, 123456789]])
@@ -160,7 +173,7 @@ def test_cli_record_writes_and_reports(tmp_path: Path, capsys) -> None:
     main(["simulate", "record", "--herd", "2", "--days", "0.01", "--seed", "2", "--format",
           "npz", "--processes", "1", "--fixed-roll", "--out", str(out)])  # fmt: skip
     text = capsys.readouterr().out
-    assert "recorded 2 collars" in text and str(out) in text
+    assert "recorded 2 animals (2 collars)" in text and str(out) in text
     assert sorted(p.name for p in (out / "compact").iterdir()) == ["C0001.npz", "C0002.npz"]
     assert not (out / "raw").exists()
     assert json.loads((out / "herd.json").read_text())["parameters"]["random_roll"] is False

@@ -50,6 +50,9 @@ _ESTRUS = typer.Option(
     0.0, "--estrus-share", help="Share of animals in estrus (activity ~2.8-fold for ~8-9 h)."
 )
 _CALVING = typer.Option(0.0, "--calving-share", help="Share of animals that calve.")
+_REFIT = typer.Option(
+    0.0, "--refit-share", help="Share of animals whose collar is replaced by a spare once."
+)
 _START = typer.Option(
     None,
     "--start",
@@ -86,6 +89,7 @@ _HERD_OPTIONS = (
     ("illness", float, _ILLNESS, "illness_share"),
     ("estrus", float, _ESTRUS, "estrus_share"),
     ("calving", float, _CALVING, "calving_share"),
+    ("refit", float, _REFIT, "refit_share"),
     ("start", str | None, _START, "start"),
 )
 
@@ -157,7 +161,7 @@ def record(
             **kwargs,
         )
     typer.echo(
-        f"recorded {summary['collars']} collars x {days:g} d at {hz:g} Hz to {summary['out']}:"
+        f"recorded {summary['animals']} animals ({summary['collars']} collars) x {days:g} d at {hz:g} Hz to {summary['out']}:"
         f" {summary['samples']} samples ({summary['kept_share']:.1%} kept after frame loss"
         f" and silences), {summary['observations']} observation intervals,"
         f" in {time.monotonic() - t0:.0f} s"
