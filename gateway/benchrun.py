@@ -46,11 +46,14 @@ __all__ = [
 ]
 
 
-def mqtt_client(client_id: str, protocol: str = "5") -> Any:
+def mqtt_client(client_id: str, protocol: str = "5", persistent: bool = False) -> Any:
+    """A paho client; ``persistent`` keeps a 3.1.1 session (MQTT 5 asks at connect)."""
     import paho.mqtt.client as mqtt
 
-    proto = mqtt.MQTTv5 if protocol == "5" else mqtt.MQTTv311
-    return mqtt.Client(mqtt.CallbackAPIVersion.VERSION2, client_id=client_id, protocol=proto)
+    kw: dict[str, Any] = {"client_id": client_id, "protocol": mqtt.MQTTv5}
+    if protocol != "5":
+        kw.update(protocol=mqtt.MQTTv311, clean_session=not persistent)
+    return mqtt.Client(mqtt.CallbackAPIVersion.VERSION2, **kw)
 
 
 def _serve(body: Callable[[Any, Any], dict[str, Any]], who: str, spec: Any, conn: Any) -> None:
@@ -81,7 +84,7 @@ class PublishSpec:
     from_s: float = 0.0
     until_s: float | None = None
     paced: bool = False
-    protocol: str = "5"
+    protocol: str = "3.1.1"  # the publishers' own; the consumer's protocol is the consumer's
     inflight: int = 1000
 
 
@@ -222,6 +225,17 @@ class _Progress:
         }
 
 
+def _io_write_bytes() -> int:
+    """Bytes this process caused to be written to storage so far (proc(5) write_bytes)."""
+    try:
+        for line in Path("/proc/self/io").read_text().splitlines():
+            if line.startswith("write_bytes:"):
+                return int(line.split()[1])
+    except OSError:
+        pass
+    return 0
+
+
 def _session_properties(expiry_s: int = 3600) -> Any:
     from paho.mqtt.packettypes import PacketTypes
     from paho.mqtt.properties import Properties
@@ -256,13 +270,16 @@ def _bare(spec: ConsumeSpec, conn: Any) -> dict[str, Any]:
 
     def session() -> tuple[Any, threading.Thread]:
         subscribed.clear()
-        client = mqtt_client("bench-bare", spec.protocol)
+        client = mqtt_client("bench-bare", spec.protocol, persistent=True)
         client.on_connect, client.on_message = on_connect, on_message
         client.on_subscribe = lambda *_a: subscribed.set()
-        client.connect(
-            spec.host, spec.port, keepalive=60, clean_start=False,
-            properties=_session_properties(),
-        )  # fmt: skip
+        if spec.protocol == "5":
+            client.connect(
+                spec.host, spec.port, keepalive=60, clean_start=False,
+                properties=_session_properties(),
+            )  # fmt: skip
+        else:
+            client.connect(spec.host, spec.port, keepalive=60)
         # paho's own loop in a thread of ours: PUBACKs go out from the callback directly
         thread = threading.Thread(target=client.loop_forever, daemon=True)
         thread.start()
@@ -307,6 +324,8 @@ class GatewaySpec(ConsumeSpec):
     replay: bool = False  # frames arrive faster than real time: no rate limit, no silence flush
     latency: bool = False  # measure window -> stored latency (costs a little CPU)
     settle_s: float = 2.0  # latency counts windows that became ready this long after caught up
+    tick_s: float | None = None  # None: the daemon's default (experiments only)
+    commit_interval_s: float | None = None  # None: the store setting's default
 
 
 def bench_settings(spec: GatewaySpec) -> Any:
@@ -323,7 +342,9 @@ def bench_settings(spec: GatewaySpec) -> Any:
             "mqtt": {"host": spec.host, "port": spec.port, "client_id": "bench-gateway",
                      "protocol": spec.protocol},
             "model": {"path": spec.model, "watch": False},
-            "store": {"data_dir": spec.data_dir},
+            "store": {"data_dir": spec.data_dir}
+            | ({} if spec.commit_interval_s is None else
+               {"commit_interval_s": spec.commit_interval_s}),
             "http": {"enabled": False},
             "influx": {"enabled": False},
             "outputs": {"mqtt": False},
@@ -334,15 +355,17 @@ def bench_settings(spec: GatewaySpec) -> Any:
 
 class _Probe:
     """Instruments one Gateway without changing what it does: time spent per stage, and the
-    latency from each window's last sample arriving (``WindowBatch.ready_at``) to the store
-    transaction that holds its outcome (the animal's tracker snapshot) committing."""
+    latency of each window, from its last sample arriving (``WindowBatch.ready_at``) to the
+    commit of the first store transaction after the tick that classified it, the commit that
+    holds everything the window has caused so far. The smoother's fixed lag (a hop is decided
+    ``smoothing.lag_s`` later, by design) comes on top and is not part of it."""
 
     def __init__(self, gw: Any, store: Any, prog: _Progress, latency: bool, settle_s: float):
         self.prog = prog
         self.seconds: dict[str, float] = defaultdict(float)
         self.calls: dict[str, int] = defaultdict(int)
         self.latencies: list[np.ndarray] = []
-        self._pending: dict[str, list[float]] = defaultdict(list)
+        self._pending: list[np.ndarray] = []
         self._latency, self._settle = latency, settle_s
         self.ticks_after_last = 0
         self._wrap(gw, "handle", self._on_handle)
@@ -359,38 +382,32 @@ class _Probe:
             out = inner(*args, **kw)
             seconds[name] += time.perf_counter() - t0
             calls[name] += 1
-            after(out, *args, **kw)
+            after(*args, **kw)
             return out
 
         setattr(obj, name, wrapped)
 
-    def _on_handle(self, _accepted: int, messages: list[Any]) -> None:
+    def _on_handle(self, messages: list[Any], *_a: Any, **_k: Any) -> None:
         if messages:
+            first = self.prog.msgs == 0
             self.prog.arrived(len(messages), messages[-1][2])
-            if self.prog.first == messages[-1][2]:
+            if first:
                 self.prog.first = messages[0][2]
             self.ticks_after_last = 0
 
-    def _on_tick(self, _result: Any, *_a: Any, **_k: Any) -> None:
+    def _on_tick(self, *_a: Any, **_k: Any) -> None:
         self.ticks_after_last += 1
 
-    def _on_classify(self, _posts: Any, batch: Any) -> None:
-        if not self._latency or not self.prog.t_caught_up:
-            return
-        since = self.prog.t_caught_up + self._settle
-        for animal, ready in zip(batch.animals, batch.ready_at.tolist(), strict=True):
-            if ready >= since:
-                self._pending[animal].append(ready)
+    def _on_classify(self, batch: Any, *_a: Any, **_k: Any) -> None:
+        if self._latency and self.prog.t_caught_up and len(batch):
+            ready = batch.ready_at
+            self._pending.append(ready[ready >= self.prog.t_caught_up + self._settle])
 
-    def _on_write(self, _out: Any, events: Any, states: Any = None) -> None:
-        if not self._pending:
-            return
-        now = time.time()
-        animals = set(states or ()) | {e.animal for e in events}
-        for a in animals:
-            ready = self._pending.pop(a, None)
-            if ready:
-                self.latencies.append(now - np.asarray(ready))
+    def _on_write(self, *_a: Any, **_k: Any) -> None:
+        if self._pending:
+            now = time.time()
+            self.latencies.extend(now - r for r in self._pending)
+            self._pending = []
 
     def figures(self) -> dict[str, Any]:
         lat = np.concatenate(self.latencies) if self.latencies else np.zeros(0)
@@ -398,7 +415,7 @@ class _Probe:
             "stage_seconds": dict(self.seconds),
             "stage_calls": dict(self.calls),
             "latency": summarize(lat),
-            "latency_unstored_windows": sum(len(v) for v in self._pending.values()),
+            "latency_unstored_windows": int(sum(len(r) for r in self._pending)),
         }
 
 
@@ -454,9 +471,10 @@ def _gateway(spec: GatewaySpec, conn: Any) -> dict[str, Any]:
             conn.recv()
             cpu["0"] = time.process_time()
             prog.t_go = time.time()
+        io0 = _io_write_bytes()
         thread = threading.Thread(target=watcher, daemon=True)
         thread.start()
-        gw.run(stop, ingest=ingest)
+        gw.run(stop, ingest=ingest, **({} if spec.tick_s is None else {"tick_s": spec.tick_s}))
         thread.join(10.0)
         cpu_s = cpu.get("1", time.process_time()) - cpu.get("0", 0.0)
         snap = tel.snapshot()
@@ -475,6 +493,8 @@ def _gateway(spec: GatewaySpec, conn: Any) -> dict[str, Any]:
                 tel.value("boutline_events_total", kind=k) for k in ("state_changed", "bout_closed")
             ),
             "store_bytes": store.size_bytes(),
+            # everything the store (and its WAL) wrote while the run lasted: SD-card wear
+            "disk_write_bytes": _io_write_bytes() - io0,
         }
     finally:
         store.close()

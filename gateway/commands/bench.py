@@ -1,13 +1,116 @@
-"""``boutline bench``: placeholder until its part is built."""
+"""``boutline bench``: throughput, latency and memory of the full gateway path, against the
+bare-subscriber and onnxruntime-alone limits (gateway/bench.py, docs/performance.md)."""
 
 from __future__ import annotations
 
-from ..errors import NotBuiltError
+import json
+from pathlib import Path
+
+import typer
+
+__all__ = ["bench"]
 
 
-def bench() -> None:
+def _collars(text: str) -> tuple[int, ...]:
+    from ..errors import ConfigError
+
+    try:
+        values = tuple(int(x.replace("_", "")) for x in text.split(",") if x.strip())
+    except ValueError as exc:
+        raise ConfigError(
+            f"--collars {text[:60]!r} is not a list of whole numbers; write e.g. 100,1000,10000"
+        ) from exc
+    if not values:
+        raise ConfigError("--collars is empty; write e.g. 100,1000,10000")
+    return values
+
+
+def _phases(text: str) -> tuple[str, ...]:
+    from ..bench import PHASES
+    from ..errors import ConfigError
+
+    values = tuple(x.strip() for x in text.split(",") if x.strip())
+    bad = [v for v in values if v not in PHASES]
+    if bad or not values:
+        raise ConfigError(f"--phases {text[:60]!r}: choose from {','.join(PHASES)}")
+    return values
+
+
+def bench(
+    collars: str = typer.Option(
+        "100,1000,10000", "--collars", help="Herd sizes to measure, comma-separated."
+    ),
+    seconds: float = typer.Option(
+        30.0,
+        "--seconds",
+        help="Herd seconds per flat-out run (small herds get more, for 60,000 frames at least).",
+    ),
+    latency_seconds: float = typer.Option(
+        30.0, "--latency-seconds", help="Herd seconds published in real time for the latency."
+    ),
+    repeats: int = typer.Option(3, "--repeats", help="Runs per herd size; the table is medians."),
+    fmt: str = typer.Option("json", "--format", help="Payloads the gateway gets: json or binary."),
+    protocol: str = typer.Option(
+        "5", "--protocol", help="MQTT version of the gateway and bare subscriber: 5 or 3.1.1."
+    ),
+    publishers: int = typer.Option(2, "--publishers", help="Publisher processes."),
+    phases: str = typer.Option(
+        "decode,bare,onnx,gateway,latency",
+        "--phases",
+        help="What to measure: decode, bare, onnx, gateway (flat out), latency (real time).",
+    ),
+    model: Path | None = typer.Option(None, "--model", help="ONNX model; default: the shipped."),
+    seed: int = typer.Option(1, "--seed", help="Seed of the simulated herd."),
+    out: Path = typer.Option(
+        Path("bench.json"), "--out", "-o", help="JSON report with every run and the medians."
+    ),
+    soak: bool = typer.Option(
+        False, "--soak", help="The week-long soak run with broker and database restarts."
+    ),
+) -> None:
     """Measure gateway throughput, latency and memory against the bare-subscriber limit.
 
-    Example: boutline bench --collars 1000
+    Starts its own Mosquitto on a free loopback port, publishes a simulated herd from
+    separate processes and runs the real gateway (decode, windows, inference, smoothing,
+    bouts, SQLite store). For every herd size: sustained frames/s draining a backlog flat
+    out, window-to-stored latency p50/p99 in real time, CPU seconds per 1,000 frames and
+    peak RSS; beside them a bare paho-mqtt subscriber that only decodes, and onnxruntime
+    alone on the same windows, with each ratio. Prints a table and the targets, writes JSON.
+    A benchmark, not a test: quote medians of repeated runs on a quiet machine.
+
+    Example: boutline bench --collars 100,1000 --repeats 3 --out bench.json
     """
-    raise NotBuiltError("`boutline bench` is not built yet")
+    from ..bench import BenchOptions, format_table, run_bench
+    from ..errors import NotBuiltError
+    from ._progress import step_progress
+
+    if soak:
+        raise NotBuiltError(
+            "`boutline bench --soak` is not built yet; docs/performance.md says what it will do"
+        )
+    opts = BenchOptions(
+        collars=_collars(collars),
+        seconds=seconds,
+        latency_seconds=latency_seconds,
+        repeats=repeats,
+        fmt=fmt,
+        protocol=protocol,
+        publishers=publishers,
+        seed=seed,
+        model=str(model) if model else "",
+        phases=_phases(phases),
+    )
+    opts.check()
+    per_repeat = len(opts.phases) + (1 if "bare" in opts.phases else 0)
+    total = len(opts.collars) * (1 + opts.repeats * per_repeat)
+    with step_progress("bench", total) as advance:
+        report = run_bench(opts, progress=advance)
+    text = format_table(report["rows"], report["targets"])
+    typer.echo(text)
+    try:
+        out.write_text(json.dumps(report, indent=1, default=str) + "\n")
+    except OSError as exc:
+        from ..errors import BoutlineError
+
+        raise BoutlineError(f"cannot write {out} ({exc.strerror}); give another --out") from exc
+    typer.echo(f"\nreport: {out} (medians of {opts.repeats} run(s) per herd size)")
