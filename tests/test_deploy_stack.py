@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import json
 import os
+import re
 import signal
 import subprocess
 import sys
@@ -138,6 +139,20 @@ def test_stack_shows_the_demo_herd_on_the_herd_dashboard(tmp_path):
         for where, q in queries(board):
             if where.startswith("panel") and "daily_budget" not in q:
                 assert _influx(influx.url, grafana_macros(q), reader, db).get("series"), where
+        # docs/operations.md troubleshoots from /healthz and /metrics: every name it uses is real.
+        http = f"http://127.0.0.1:{gw_env['BOUTLINE_HTTP_PORT']}"
+        with urllib.request.urlopen(f"{http}/healthz", timeout=10) as r:
+            assert r.status == 200
+            health = json.loads(r.read())
+        assert health["ready"] and health["broker_connected"] and health["model_loaded"]
+        for sink in health["sinks"].values():
+            assert {"state", "backlog", "oldest_s", "last_error"} <= set(sink)
+        with urllib.request.urlopen(f"{http}/metrics", timeout=10) as r:
+            exposed = set(re.findall(r"^# TYPE (\w+)", r.read().decode(), flags=re.M))
+        ops = (ROOT / "docs" / "operations.md").read_text()
+        for name in set(re.findall(r"\b(boutline_[a-z_]+[a-z])\b", ops)):
+            base = name.removesuffix("_total")
+            assert name in exposed or base in exposed, f"docs/operations.md names {name}"
         # The read-only login cannot write, as in the compose file.
         with pytest.raises(urllib.error.HTTPError) as denied:
             urllib.request.urlopen(
