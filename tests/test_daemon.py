@@ -338,3 +338,25 @@ def test_analytics_follow_the_gateway_budgets_and_collar_health(tmp_path: Path) 
     # bouts close after their criterion; the ruminating hour is accounted for by now
     assert b.minutes.get("ruminating", 0.0) == pytest.approx(60.0, abs=1.0)
     assert b.bouts.get("ruminating") == 1
+
+
+def test_a_collar_moved_to_another_cow_keeps_both_histories_apart(tmp_path: Path) -> None:
+    assignments = tmp_path / "assignments.csv"
+    # 2026-01-01T00:05:00Z is T0 + 300 s: the collar goes from cow-a to cow-b then
+    assignments.write_text(
+        "collar,animal,from,to\n"
+        "C1,cow-a,2026-01-01T00:00:00Z,2026-01-01T00:05:00Z\n"
+        "C1,cow-b,2026-01-01T00:05:00Z,\n"
+    )
+    gw = Gateway(settings(tmp_path, site={"assignments": str(assignments)}))
+    frames = script("C1", [("resting", 300), ("walking", 300)])
+    results = []
+    for k in range(0, len(frames), 10):
+        gw.handle(msg(f) for f in frames[k : k + 10])
+        results.append(gw.tick(now=frames[k + 9].t_end))
+    results.append(gw.close(now=frames[-1].t_end))
+    a = [(t, b) for t, b in decisions_of(results, "cow-a") if b != NO_DATA]
+    b = [(t, b) for t, b in decisions_of(results, "cow-b") if b != NO_DATA]
+    assert a and b and decisions_of(results, "C1") == []
+    assert max(t for t, _ in a) < 300 <= min(t for t, _ in b)
+    assert {x for _, x in a} == {"resting"} and {x for _, x in b} == {"walking"}

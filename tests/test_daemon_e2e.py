@@ -52,7 +52,7 @@ def test_simulated_herd_through_mosquitto_meets_the_acceptance_figures(
     assignments = tmp_path / "assignments.csv"
     assignments.write_text(
         "collar,animal,from,to\n"
-        + "".join(f"{r['collar']},{r['animal']},{r['from']},\n" for r in truth.assignments)
+        + "".join(f"{r['collar']},{r['animal']},{r['from']},{r['to']}\n" for r in truth.assignments)
     )
     settings = Settings.model_validate(
         {
