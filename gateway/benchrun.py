@@ -591,8 +591,9 @@ def run_phases(
     live: tuple[float, float | None, bool] | None = None,
     timeout_s: float = 900.0,
 ) -> dict[str, Any]:
-    """One run: backlog herd seconds ``[0, backlog_until_s)`` queued before ``go`` (None:
-    no backlog), then ``live = (from_s, until_s, paced)`` published once caught up.
+    """One run: herd seconds ``[0, backlog_until_s)`` (None: all) queued before ``go`` when
+    the consumer expects a backlog, then ``live = (from_s, until_s, paced)`` published once
+    it has caught up.
 
     Returns the consumer's figures plus the publishers' and the broker's CPU seconds.
     """
@@ -603,7 +604,7 @@ def run_phases(
         cconn = kids.start(consumer, spec)
         recv(cconn, "ready", 180.0, "the consumer")
         pub: list[dict[str, Any]] = []
-        if backlog_until_s is not None and spec.backlog:
+        if spec.backlog:
             pconns = _publishers(
                 kids, payloads, broker, fmt, publishers, from_s=0.0, until_s=backlog_until_s
             )
