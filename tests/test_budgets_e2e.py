@@ -22,6 +22,7 @@ import pytest
 
 from gateway.analytics import Analytics
 from gateway.budgets import DailyBudget
+from gateway.collarhealth import CollarStatus
 from gateway.config import Settings
 from gateway.daemon import Gateway
 from gateway.model import load_model
@@ -66,6 +67,8 @@ class Run:
     got: dict[tuple[str, str], DailyBudget]
     delivered: dict[str, list[tuple[float, int, float]]]
     truth: dict[tuple[str, str], dict[str, float]]
+    seqs: dict[str, list[int]]
+    collars: dict[str, CollarStatus]
 
 
 @pytest.fixture(scope="module")
@@ -81,28 +84,32 @@ def run(tmp_path_factory: pytest.TempPathFactory) -> Run:
         {"site": {"id": SITE, "assignments": str(assignments)}, "store": {"data_dir": str(tmp)}}
     )
     store = Store.open(tmp)
-    analytics = Analytics(settings, speed=None)
-    analytics.attach(store)
-    gw = Gateway(settings, store=store, speed=None)
+    gw = Gateway(settings, store=store, speed=None, analytics=Analytics(settings, speed=None))
     delivered: dict[str, list[tuple[float, int, float]]] = {}
+    seqs: dict[str, list[int]] = {}
     batch = []
     for f in herd:
         delivered.setdefault(f.collar_id, []).append((f.t, f.n, f.hz))
+        seqs.setdefault(f.collar_id, []).append(f.seq)
         batch.append((collar_topic("barn", SITE, f.collar_id), encode_binary(f), f.t_end))
         if len(batch) == 2000:
             gw.handle(batch)
             gw.tick(f.t_end)
             batch = []
     gw.handle(batch)
-    gw.close(herd.end, final=True)
-    analytics.tick(herd.end + 4 * 3600.0)
-    got = {(b.animal, b.day): b for b in analytics.ledger.read(analytics._conn)}
-    analytics.close()
+    gw.close(herd.end, final=True)  # closes the gateway's analytics too
     store.close()
+    # later (a restarted gateway, say): the last day is over long enough to be final
+    later = Analytics(settings, speed=None)
+    later.open(tmp / "boutline.db")
+    later.tick(herd.end + 4 * 3600.0)
+    got = {(b.animal, b.day): b for b in later.ledger.read(later._conn)}
+    collars = {s.collar_id: s for s in later.collars.snapshot(herd.end)}
+    later.close()
     truth: dict[tuple[str, str], dict[str, float]] = {}
     for animal, day, behaviour, minutes in herd.budgets():
         truth.setdefault((animal, day), {})[behaviour] = minutes
-    return Run(herd, settings, got, delivered, truth)
+    return Run(herd, settings, got, delivered, truth, seqs, collars)
 
 
 @pytest.mark.slow
@@ -121,6 +128,15 @@ def test_coverage_is_what_the_frame_loss_leaves(run: Run) -> None:
             off[(animal, day)] = (round(b.coverage, 4), round(predicted, 4))
     assert not off, off
     assert min(want.values()) < 0.99  # the simulated loss did cost coverage: the check has teeth
+
+
+@pytest.mark.slow
+def test_collar_health_counts_the_frames_the_simulator_lost(run: Run) -> None:
+    for collar, seq in run.seqs.items():
+        st = run.collars[collar]
+        sent = seq[-1] - seq[0] + 1  # the simulator numbers every frame it sends
+        assert (st.frames, st.lost) == (len(seq), sent - len(seq)), collar
+        assert st.animal == {r["collar"]: r["animal"] for r in run.herd.assignments}[collar]
 
 
 @pytest.mark.slow
