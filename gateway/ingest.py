@@ -157,11 +157,18 @@ class Ingest:
             )
 
     def _on_connect_fail(self, client: Any, userdata: Any) -> None:
+        # paho does not say why; with TLS an untrusted certificate looks the same as no broker
+        hint = (
+            " or its TLS certificate is not trusted (check mqtt.ca_file)"
+            if self.settings.tls
+            else ""
+        )
         self._warn.warning(
             "connect_fail",
-            "cannot reach the broker at %s:%s; retrying with backoff up to %g s",
+            "cannot reach the broker at %s:%s%s; retrying with backoff up to %g s",
             self.settings.host,
             self.settings.port,
+            hint,
             self.settings.reconnect_max_s,
         )
 
