@@ -281,6 +281,7 @@ def run_demo(
                 "client_id": f"boutline-demo-{stamp}",
                 "reconnect_min_s": 0.5,
                 "reconnect_max_s": 5.0,
+                "session_expiry_s": 0,  # a demo leaves no session behind on a real broker
             },
             "model": {"path": str(model) if model else "", "watch": False},
             "windows": {"clock_past_s": min(30 * 86400.0, duration_s + 86400.0)},
