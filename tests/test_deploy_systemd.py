@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import configparser
 import os
+import re
 import shutil
 import socket
 import subprocess
@@ -315,3 +316,20 @@ def test_daemon_speaks_the_units_notify_protocol(mosquitto, notify_socket, tmp_p
             proc.kill()
             proc.wait(10)
         proc.stderr.close()
+
+
+def test_pi_mosquitto_sed_maps_every_container_path():
+    # docs/deploy.md (route B) rewrites the container's paths with sed; run its expressions.
+    doc = (ROOT / "docs" / "deploy.md").read_text()
+    exprs = re.findall(r"-e '(s#[^']+#)'", doc)
+    assert len(exprs) == 4, exprs
+    conf = ROOT / "deploy" / "mosquitto" / "mosquitto.conf"
+    argv = ["sed"] + [a for e in exprs for a in ("-e", e)] + [str(conf)]
+    out = subprocess.run(argv, capture_output=True, text=True, check=True, timeout=30).stdout
+    settings = dict(line.split(None, 1) for line in out.splitlines() if line and line[0] != "#")
+    assert not [v for v in settings.values() if v.startswith("/mosquitto/")]
+    assert settings["password_file"] == "/etc/mosquitto/passwd"
+    assert settings["acl_file"] == "/etc/mosquitto/acl"
+    assert settings["persistence_location"] == "/var/lib/mosquitto/"
+    assert settings["log_dest"] == "syslog"
+    assert settings["allow_anonymous"] == "false"
