@@ -312,3 +312,12 @@ def test_template_variables_select_one_animal_or_collar(loaded_db, board, where,
         for key, want in (("animal", animal), ("collar", COLLARS[animal]), ("site", site)):
             if key in row:
                 assert row[key] == want, (where, row)
+
+
+def test_rumination_band_is_the_published_reference_interval():
+    # Braun, Tschoner & Hassig 2014, BMC Vet Res (FIELD.md): reference interval 304-471 min/d.
+    board = dashboards()["rumination.json"]
+    (p,) = [p for p in board["panels"] if p["title"] == "Rumination minutes per day"]
+    steps = [s["value"] for s in p["fieldConfig"]["defaults"]["thresholds"]["steps"]]
+    assert steps == [None, 304, 471]
+    assert "304-471" in p["description"] and "Braun" in p["description"]
