@@ -63,9 +63,13 @@ app.command("bench")(bench.bench)
 
 
 def main(argv: list[str] | None = None) -> None:
-    """Console entry point: run the app, turning our errors into one line and an exit code."""
+    """Console entry point: run the app, turning our errors into one line and an exit code.
+
+    Usage errors (unknown option, bad value) are reported by the CLI framework itself in
+    standalone mode; only our own errors are translated here.
+    """
     try:
-        app(args=argv, standalone_mode=False)
+        app(args=argv, standalone_mode=True)
     except NotBuiltError as exc:
         typer.echo(f"Not built yet: {exc}", err=True)
         sys.exit(2)
@@ -76,21 +80,6 @@ def main(argv: list[str] | None = None) -> None:
     except BoutlineError as exc:
         typer.echo(f"Error: {exc}", err=True)
         sys.exit(1)
-    except KeyboardInterrupt:
-        typer.echo("Interrupted.", err=True)
-        sys.exit(130)
-    except typer.Exit as exc:
-        sys.exit(exc.exit_code)
-    except typer.Abort:
-        typer.echo("Aborted.", err=True)
-        sys.exit(1)
-    except Exception as exc:  # click usage errors and friends
-        import click
-
-        if isinstance(exc, click.ClickException):
-            exc.show()
-            sys.exit(exc.exit_code)
-        raise
 
 
 if __name__ == "__main__":

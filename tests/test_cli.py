@@ -32,3 +32,17 @@ def test_every_command_has_help_with_an_example(name: str) -> None:
 def test_version() -> None:
     r = runner.invoke(app, ["--version"])
     assert r.exit_code == 0 and r.output.strip() == f"boutline {__version__}"
+
+
+def test_usage_errors_are_one_message_without_traceback() -> None:
+    import subprocess
+    import sys
+
+    r = subprocess.run(
+        [sys.executable, "-m", "gateway.cli", "run", "--no-such-option"],
+        capture_output=True,
+        text=True,
+        timeout=60,
+    )
+    assert r.returncode == 2
+    assert "No such option" in r.stderr and "Traceback" not in r.stderr
