@@ -154,13 +154,19 @@ def interval_of(event: Any) -> Interval | None:
     ``"no_data"`` and ``animal``/``start``/``end``; everything else (state changes) is None.
     """
     kind = getattr(event, "kind", None)
-    if kind == "bout_closed":
-        label = str(event.behaviour)
-        return Interval(
-            event.animal, label, float(event.start), float(event.end), float(event.no_data_s)
-        )
-    if kind in ("no_data", "no_data_closed"):
-        return Interval(event.animal, NO_DATA, float(event.start), float(event.end))
+    try:
+        if kind == "bout_closed":
+            return Interval(
+                str(event.animal),
+                str(event.behaviour),
+                float(event.start),
+                float(event.end),
+                float(event.no_data_s),
+            )
+        if kind in ("no_data", "no_data_closed"):
+            return Interval(str(event.animal), NO_DATA, float(event.start), float(event.end))
+    except (AttributeError, TypeError, ValueError):
+        return None  # not an interval we can read; the store has already refused it
     return None
 
 
@@ -284,9 +290,10 @@ class BudgetLedger:
     >>> conn = sqlite3.connect(":memory:")
     >>> ledger = BudgetLedger(DayClock("UTC"))
     >>> ledger.ensure_schema(conn)
-    >>> ledger.listener(conn, [BoutClosed("cow-1", "ruminating", 82800.0, 90000.0, 0.9)])
+    >>> t = 1772406000.0  # 2026-03-01 23:00 UTC
+    >>> ledger.listener(conn, [BoutClosed("cow-1", "ruminating", t, t + 7200.0, 0.9)])
     >>> [(b.day, b.minutes) for b in ledger.read(conn, animal="cow-1")]
-    [('1970-01-01', {'ruminating': 60.0}), ('1970-01-02', {'ruminating': 60.0})]
+    [('2026-03-01', {'ruminating': 60.0}), ('2026-03-02', {'ruminating': 60.0})]
     """
 
     def __init__(self, clock: DayClock, *, final_after_h: float = 3.0) -> None:
@@ -310,10 +317,12 @@ class BudgetLedger:
                 self._state(conn, ev)
                 continue
             iv = interval_of(ev)
-            if iv is not None and iv.end > iv.start:
+            if iv is not None and _usable(iv):
                 self.add(conn, iv)
 
     def _state(self, conn: sqlite3.Connection, ev: Any) -> None:
+        if not _finite(ev.since):
+            return
         conn.execute(
             "INSERT INTO budget_cursor (animal, state, state_since) VALUES (?, ?, ?)"
             " ON CONFLICT (animal) DO UPDATE SET state = excluded.state,"
@@ -536,6 +545,30 @@ class BudgetLedger:
     def animals(self, conn: sqlite3.Connection) -> list[str]:
         """Every animal the ledger has seen (each has a cursor)."""
         return [r[0] for r in conn.execute("SELECT animal FROM budget_cursor ORDER BY 1")]
+
+
+# The store refuses non-finite bouts but hands every event to its listeners; one bad event
+# must not fail the batch (it would be retried for ever). A bout longer than this is a
+# clock error, not behaviour (lying bouts are 88 +/- 30 min, Ito et al. 2009, FIELD.md).
+_MAX_INTERVAL_S = 7 * DAY_S
+# Unix seconds the ledger accepts: 2000-01-01 to 2200-01-01 (datetime and zone rules hold).
+_T_MIN, _T_MAX = 946684800.0, 7258118400.0
+
+
+def _finite(*xs: Any) -> bool:
+    try:
+        return all(math.isfinite(float(x)) for x in xs)
+    except (TypeError, ValueError):
+        return False
+
+
+def _usable(iv: Interval) -> bool:
+    return (
+        _finite(iv.start, iv.end, iv.no_data_s)
+        and _T_MIN <= iv.start < iv.end <= _T_MAX
+        and iv.end - iv.start <= _MAX_INTERVAL_S
+        and iv.no_data_s >= 0
+    )
 
 
 def _order(behaviour: str) -> tuple[int, str]:

@@ -8,6 +8,8 @@ from pathlib import Path
 from zoneinfo import ZoneInfo
 
 import pytest
+from hypothesis import given
+from hypothesis import strategies as st
 
 from gateway.analytics import Analytics
 from gateway.budgets import BudgetLedger, DayClock
@@ -241,3 +243,35 @@ def test_budgets_match_the_simulators_truth_and_partial_days_are_not_extrapolate
     assert b.no_data_min == pytest.approx(360.0)
     assert b.classified_min == pytest.approx(1080.0)
     assert all(b.minutes.get(k, 0.0) <= v + 0.01 for k, v in truth[gap_day].items())
+
+
+_ANY = st.one_of(
+    st.floats(allow_nan=True, allow_infinity=True),
+    st.integers(min_value=-(2**70), max_value=2**70),
+    st.none(),
+    st.text(max_size=5),
+)
+
+
+@given(
+    st.lists(
+        st.tuples(st.sampled_from(["a", "b", ""]), st.sampled_from(["resting", NO_DATA, "x" * 300]),
+                  _ANY, _ANY, _ANY),
+        max_size=20,
+    )
+)  # fmt: skip
+def test_hostile_events_never_fail_the_store_batch(rows) -> None:
+    # the store refuses bad bouts but hands every event to its listeners: none may raise
+    led, conn = ledger_db()
+    events = [BoutClosed(a, b, s, e, 0.9, nd) for a, b, s, e, nd in rows]
+    events.append(StateChanged("a", "resting", float("nan"), 0.9))
+    led.listener(conn, events)
+    for b in led.read(conn):
+        assert 0.0 <= b.classified_min <= b.length_min + 1e-6
+        assert 0.0 <= b.coverage <= 1.0
+
+
+def test_a_bout_with_an_absurd_length_is_ignored() -> None:
+    led, conn = ledger_db()
+    led.listener(conn, [BoutClosed("cow-1", "resting", T0, T0 + 400 * 86400.0, 0.9)])
+    assert led.read(conn) == [] and led.animals(conn) == []
