@@ -170,8 +170,10 @@ def test_raw_csv_roundtrip(tmp_path: Path) -> None:
 
 def test_cli_record_writes_and_reports(tmp_path: Path, capsys) -> None:
     out = tmp_path / "cli"
-    main(["simulate", "record", "--herd", "2", "--days", "0.01", "--seed", "2", "--format",
-          "npz", "--processes", "1", "--fixed-roll", "--out", str(out)])  # fmt: skip
+    with pytest.raises(SystemExit) as ei:
+        main(["simulate", "record", "--herd", "2", "--days", "0.01", "--seed", "2", "--format",
+              "npz", "--processes", "1", "--fixed-roll", "--out", str(out)])  # fmt: skip
+    assert ei.value.code in (0, None)
     text = capsys.readouterr().out
     assert "recorded 2 animals (2 collars)" in text and str(out) in text
     assert sorted(p.name for p in (out / "compact").iterdir()) == ["C0001.npz", "C0002.npz"]
