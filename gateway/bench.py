@@ -60,6 +60,7 @@ __all__ = [
     "onnx_alone",
     "pid_cpu_s",
     "pid_peak_rss_mb",
+    "profile_summary",
     "run_bench",
     "summarize",
     "warm_up_seconds",
@@ -423,6 +424,36 @@ def onnx_alone(
     }
 
 
+# --------------------------------------------------------------------------------- profiles
+
+
+def profile_summary(path: Path, top: int = 15) -> dict[str, Any]:
+    """Where a py-spy raw profile (folded stacks, one ``frame;frame;... count`` a line) spent
+    its samples: the functions with the most samples of their own, and per module."""
+    own: dict[str, int] = {}
+    modules: dict[str, int] = {}
+    total = 0
+    for line in path.read_text(errors="replace").splitlines():
+        stack, _, count = line.rpartition(" ")
+        if not stack or not count.isdigit():
+            continue
+        n = int(count)
+        total += n
+        leaf = stack.rsplit(";", 1)[-1]
+        name, _, where = leaf.partition(" (")
+        where = where.rsplit(":", 1)[0].rstrip(")").split("/site-packages/")[-1]
+        key = f"{name} ({where})"
+        own[key] = own.get(key, 0) + n
+        module = where or "?"
+        modules[module] = modules.get(module, 0) + n
+
+    def share(d: dict[str, int]) -> list[tuple[str, float]]:
+        ranked = sorted(d.items(), key=lambda kv: -kv[1])[:top]
+        return [(k, round(100.0 * v / total, 1)) for k, v in ranked]
+
+    return {"samples": total, "own_percent": share(own), "module_percent": share(modules)}
+
+
 # --------------------------------------------------------------------------------- targets
 
 
@@ -528,6 +559,7 @@ class BenchOptions:
     publishers: int = 2
     seed: int = 1
     model: str = ""
+    profile_dir: str = ""  # py-spy profiles of the gateway's first flat-out run per size
     workdir: str = ""
     keep: bool = False
     phases: tuple[str, ...] = PHASES
@@ -656,6 +688,17 @@ def _drain(
     return out
 
 
+def _wait_profile(path: Path, timeout_s: float = 20.0) -> dict[str, Any] | None:
+    """py-spy writes its file once the sampled process has exited."""
+    deadline = time.monotonic() + timeout_s
+    while time.monotonic() < deadline:
+        if path.is_file() and path.stat().st_size > 0:
+            time.sleep(0.5)  # let it finish writing
+            return {"file": str(path), **profile_summary(path)}
+        time.sleep(0.2)
+    return None
+
+
 def _realtime(
     payloads: PayloadSet, workdir: Path, opts: BenchOptions, warm: float
 ) -> dict[str, Any]:
@@ -709,7 +752,15 @@ def _one_repeat(
             out["onnx_frames_per_s"] = o["frames_per_s_equivalent"]
         if "gateway" in opts.phases:
             say(f"{tag}: gateway, draining {flat_s:g} s of the herd flat out")
-            g = _drain("gateway", payloads, workdir / "gateway", opts, opts.fmt, flat_s)
+            prof = ""
+            if opts.profile_dir and tag.endswith(f"run 1/{opts.repeats}"):
+                Path(opts.profile_dir).mkdir(parents=True, exist_ok=True)
+                prof = str(Path(opts.profile_dir) / f"gateway-{n}-{opts.fmt}.txt")
+            g = _drain(
+                "gateway", payloads, workdir / "gateway", opts, opts.fmt, flat_s, profile=prof
+            )
+            if prof:
+                out["profile"] = _wait_profile(Path(prof))
             fps = g["frames_per_s"]
             out.update(
                 frames=g["frames"],

@@ -236,6 +236,29 @@ def _io_write_bytes() -> int:
     return 0
 
 
+def py_spy() -> str:
+    """The py-spy executable (pip install py-spy), or raise saying how to get it."""
+    import shutil
+    import sys
+
+    found = shutil.which("py-spy") or str(Path(sys.executable).with_name("py-spy"))
+    if not os.access(found, os.X_OK):
+        raise BoutlineError("--profile needs py-spy; install it with: pip install py-spy")
+    return found
+
+
+def _start_py_spy(out: str) -> None:
+    """Sample this process (all threads, 200 Hz) until it exits; folded stacks to ``out``."""
+    import subprocess
+
+    argv = [py_spy(), "record", "--pid", str(os.getpid()), "--output", out, "--format", "raw"]
+    subprocess.Popen(
+        [*argv, "--rate", "200", "--nonblocking"],
+        stdout=subprocess.DEVNULL,
+        stderr=subprocess.DEVNULL,
+    )
+
+
 def _session_properties(expiry_s: int = 3600) -> Any:
     from paho.mqtt.packettypes import PacketTypes
     from paho.mqtt.properties import Properties
@@ -325,6 +348,7 @@ class GatewaySpec(ConsumeSpec):
     latency: bool = False  # measure window -> stored latency (costs a little CPU)
     settle_s: float = 2.0  # latency counts windows that became ready this long after caught up
     tick_s: float | None = None  # None: the daemon's default (experiments only)
+    profile: str = ""  # py-spy raw profile of this process to this file ("" : none)
     commit_interval_s: float | None = None  # None: the store setting's default
 
 
@@ -472,6 +496,8 @@ def _gateway(spec: GatewaySpec, conn: Any) -> dict[str, Any]:
             cpu["0"] = time.process_time()
             prog.t_go = time.time()
         io0 = _io_write_bytes()
+        if spec.profile:
+            _start_py_spy(spec.profile)
         thread = threading.Thread(target=watcher, daemon=True)
         thread.start()
         gw.run(stop, ingest=ingest, **({} if spec.tick_s is None else {"tick_s": spec.tick_s}))

@@ -169,6 +169,21 @@ def test_targets_and_table() -> None:
     assert bench.evaluate_targets([{"collars": 5}])[0]["met"] is None  # not measured
 
 
+def test_profile_summary_shares(tmp_path: Path) -> None:
+    folded = tmp_path / "p.txt"
+    folded.write_text(
+        "main (a.py:1);work (gateway/wire.py:10);decode (gateway/wire.py:20) 30\n"
+        "main (a.py:1);work (gateway/wire.py:12) 10\n"
+        "main (a.py:1);loop (/x/site-packages/paho/mqtt/client.py:5) 60\n"
+        "garbage line\n"
+    )
+    s = bench.profile_summary(folded)
+    assert s["samples"] == 100
+    assert s["own_percent"][0] == ("loop (paho/mqtt/client.py)", 60.0)
+    assert dict(s["own_percent"])["decode (gateway/wire.py)"] == 30.0
+    assert dict(s["module_percent"]) == {"paho/mqtt/client.py": 60.0, "gateway/wire.py": 40.0}
+
+
 def test_process_figures_of_this_process_and_of_a_gone_one() -> None:
     assert bench.pid_peak_rss_mb(os.getpid()) > 1.0
     assert bench.pid_cpu_s(os.getpid()) > 0.0

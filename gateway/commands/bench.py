@@ -61,6 +61,11 @@ def bench(
     ),
     model: Path | None = typer.Option(None, "--model", help="ONNX model; default: the shipped."),
     seed: int = typer.Option(1, "--seed", help="Seed of the simulated herd."),
+    profile: Path | None = typer.Option(
+        None,
+        "--profile",
+        help="Directory for py-spy profiles of the gateway (pip install py-spy); summary in JSON.",
+    ),
     out: Path = typer.Option(
         Path("bench.json"), "--out", "-o", help="JSON report with every run and the medians."
     ),
@@ -98,6 +103,7 @@ def bench(
         publishers=publishers,
         seed=seed,
         model=str(model) if model else "",
+        profile_dir=str(profile) if profile else "",
         phases=_phases(phases),
     )
     opts.check()
