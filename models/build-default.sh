@@ -6,7 +6,7 @@ set -euo pipefail
 cd "$(dirname "$0")/.."
 BOUTLINE=${BOUTLINE:-boutline}
 BUILD=${BUILD:-build}
-"$BOUTLINE" simulate record --herd 16 --days 2 --seed 1 --scenario mixed --hz 10 \
+"$BOUTLINE" simulate record --herd 40 --days 1 --seed 1 --scenario mixed --hz 10 \
   --format npz --processes 2 --overwrite --out "$BUILD/sim-train"
 "$BOUTLINE" simulate record --herd 10 --days 1 --seed 2 --scenario mixed --hz 10 \
   --format npz --processes 2 --overwrite --out "$BUILD/sim-holdout"
