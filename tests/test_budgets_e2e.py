@@ -140,14 +140,6 @@ def test_collar_health_counts_the_frames_the_simulator_lost(run: Run) -> None:
 
 
 @pytest.mark.slow
-@pytest.mark.xfail(
-    strict=True,
-    reason=(
-        "the shipped model reads about 45 % of cow-001's rumination as feeding (~200 min a"
-        " day); her simulated chewing is unusually strong (chew_g 0.059 g, ~2.7 SD above the"
-        " herd), so it looks like eating at the trough: 10 of 12 animal-days are within 10 %"
-    ),
-)
 def test_daily_minutes_within_10_percent_for_90_percent_of_animal_days(run: Run) -> None:
     good, report = 0, []
     for key, want in sorted(run.truth.items()):
