@@ -101,7 +101,7 @@ class Observation:
 
 def _open_csv(path: Path, columns: tuple[str, ...]) -> tuple[csv.DictReader, io.TextIOBase]:
     try:
-        f = path.open(newline="", encoding="utf-8")
+        f = path.open(newline="", encoding="utf-8-sig")  # a spreadsheet's BOM is fine
     except OSError as exc:
         raise DataError(f"cannot read {path}: {exc.strerror}") from exc
     reader = csv.DictReader(f)
@@ -166,8 +166,10 @@ def read_observations(path: str | Path, counts: Counter[str] | None = None) -> l
                     " swap or fix the times"
                 )
             behaviour = row["behaviour"].strip().lower()
-            if not behaviour or len(behaviour) > 64:
-                raise DataError(f"{p} line {line}: behaviour must be a name of 1-64 characters")
+            if not behaviour or len(behaviour) > 64 or not behaviour.isprintable():
+                raise DataError(
+                    f"{p} line {line}: behaviour must be a name of 1-64 printable characters"
+                )
             obs = Observation(
                 _name(row["animal"], "animal", p, line),
                 _name(row["collar"], "collar", p, line),

@@ -219,6 +219,18 @@ def test_observation_times_may_be_iso_and_empty_intervals_are_counted(tmp_path: 
         read_observations(p)
 
 
+def test_spreadsheet_bom_is_accepted_and_nul_bytes_refused(tmp_path: Path) -> None:
+    p = tmp_path / "observations.csv"
+    p.write_bytes(b"\xef\xbb\xbfanimal,collar,start,end,behaviour\ncow,C1,1,5,resting\n")
+    assert read_observations(p)[0].behaviour == "resting"
+    p.write_bytes(b"animal,collar,start,end,behaviour\ncow,C1,1,5,rest\x00ing\n")
+    with pytest.raises(DataError, match="line 2: behaviour must be"):
+        read_observations(p)
+    p.write_bytes(b"animal,collar,start,end,behaviour\n" + b"cow,C1,1,5,resting\xff\n")
+    with pytest.raises(DataError):
+        read_observations(p)
+
+
 def test_unknown_collars_and_assignment_mismatch_are_counted(tmp_path: Path) -> None:
     root = write_recording_dir(tmp_path / "r", animals=2, bouts=2)
     with (root / "observations.csv").open("a") as f:
