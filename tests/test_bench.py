@@ -169,6 +169,17 @@ def test_targets_and_table() -> None:
     assert bench.evaluate_targets([{"collars": 5}])[0]["met"] is None  # not measured
 
 
+def test_soak_rss_growth_is_the_second_half_slope() -> None:
+    from gateway.benchsoak import growth_per_day
+
+    days = np.linspace(0.0, 7.0, 71)
+    warm_then_flat = np.where(days < 1.0, 60.0 + 40.0 * days, 100.0)
+    assert growth_per_day(days, warm_then_flat) == pytest.approx(0.0, abs=1e-9)
+    leak = 100.0 + 3.0 * days
+    assert growth_per_day(days, leak) == pytest.approx(3.0)  # reference: the slope we built in
+    assert growth_per_day(days[:2], leak[:2]) is None  # too few points to say
+
+
 def test_profile_summary_shares(tmp_path: Path) -> None:
     folded = tmp_path / "p.txt"
     folded.write_text(
@@ -201,7 +212,8 @@ def test_process_figures_of_this_process_and_of_a_gone_one() -> None:
         (["bench", "--collars", "0"], 1, "collars must be whole numbers"),
         (["bench", "--format", "xml"], 1, "format 'xml'"),
         (["bench", "--phases", "gateway,magic"], 1, "--phases"),
-        (["bench", "--soak"], 2, "--soak"),
+        (["bench", "--soak", "--soak-days", "0"], 1, "soak days must be between"),
+        (["bench", "--soak", "--soak-speed", "5000"], 1, "soak speed must be between"),
     ],
 )
 def test_cli_refuses_bad_options_in_one_line(

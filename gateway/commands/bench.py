@@ -36,6 +36,28 @@ def _phases(text: str) -> tuple[str, ...]:
     return values
 
 
+def _write(out: Path, report: dict) -> None:
+    try:
+        out.write_text(json.dumps(report, indent=1, default=str) + "\n")
+    except OSError as exc:
+        from ..errors import BoutlineError
+
+        raise BoutlineError(f"cannot write {out} ({exc.strerror}); give another --out") from exc
+
+
+def _soak(days: float, speed: float, fmt: str, seed: int, out: Path) -> None:
+    import sys
+
+    from ..benchsoak import SoakOptions, format_soak, run_soak
+
+    opts = SoakOptions(days=days, speed=speed, fmt=fmt, seed=seed)
+    opts.check()
+    report = run_soak(opts, progress=lambda m: print(m, file=sys.stderr, flush=True))
+    typer.echo(format_soak(report))
+    _write(out, report)
+    typer.echo(f"\nreport: {out}")
+
+
 def bench(
     collars: str = typer.Option(
         "100,1000,10000", "--collars", help="Herd sizes to measure, comma-separated."
@@ -70,7 +92,14 @@ def bench(
         Path("bench.json"), "--out", "-o", help="JSON report with every run and the medians."
     ),
     soak: bool = typer.Option(
-        False, "--soak", help="The week-long soak run with broker and database restarts."
+        False,
+        "--soak",
+        help="Instead: the soak run, 100 collars through `boutline run` for --soak-days at"
+        " --soak-speed, with broker restarts and database outages (outside CI).",
+    ),
+    soak_days: float = typer.Option(7.0, "--soak-days", help="Simulated days of the soak."),
+    soak_speed: float = typer.Option(
+        50.0, "--soak-speed", help="Herd seconds per wall second in the soak."
     ),
 ) -> None:
     """Measure gateway throughput, latency and memory against the bare-subscriber limit.
@@ -86,13 +115,11 @@ def bench(
     Example: boutline bench --collars 100,1000 --repeats 3 --out bench.json
     """
     from ..bench import BenchOptions, format_table, run_bench
-    from ..errors import NotBuiltError
     from ._progress import step_progress
 
     if soak:
-        raise NotBuiltError(
-            "`boutline bench --soak` is not built yet; docs/performance.md says what it will do"
-        )
+        _soak(soak_days, soak_speed, fmt, seed, out)
+        return
     opts = BenchOptions(
         collars=_collars(collars),
         seconds=seconds,
@@ -113,10 +140,5 @@ def bench(
         report = run_bench(opts, progress=advance)
     text = format_table(report["rows"], report["targets"])
     typer.echo(text)
-    try:
-        out.write_text(json.dumps(report, indent=1, default=str) + "\n")
-    except OSError as exc:
-        from ..errors import BoutlineError
-
-        raise BoutlineError(f"cannot write {out} ({exc.strerror}); give another --out") from exc
+    _write(out, report)
     typer.echo(f"\nreport: {out} (medians of {opts.repeats} run(s) per herd size)")
