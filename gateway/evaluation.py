@@ -303,7 +303,8 @@ def evaluate_on_recordings(
         "model": str(model.source),
         "recordings": str(path),
         "classes": list(model.classes),
-        "data": data_summary(len(animals), collars, yt, model.classes, counts),
+        "data": data_summary(len(animals), collars, yt, model.classes, counts)
+        | {"meta": dict(recs.meta)},
         "sections": [["evaluation", "Scores on these recordings", "baseline"]],
         "evaluation": s.to_json(),
         "baseline": baseline_json(base, yt),

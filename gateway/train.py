@@ -476,6 +476,7 @@ def train_on_windows(
         card["holdout"] = _card_scores(held["evaluation"]) | {
             "recordings": Path(held["recordings"]).name,
             "animals": held["data"]["animals"],
+            "meta": held["data"].get("meta", {}),
         }
         onnx_bytes = compose()
     report["model_bytes"] = len(onnx_bytes)

@@ -134,6 +134,7 @@ def test_shipped_default_keeps_its_contract_and_says_what_it_is() -> None:
     assert card["data"]["meta"]["synthetic"] is True
     assert card["data"]["meta"]["random_roll"] is True
     held = card["holdout"]
+    assert held["meta"]["synthetic"] and held["meta"]["seed"] != card["data"]["meta"]["seed"]
     assert held["macro_f1"] >= 0.90
     assert min(v["recall"] for v in held["per_class"].values()) >= 0.85
     # The human-readable card quotes the same figures as the card inside the file.

@@ -69,6 +69,8 @@ def describe(model: Any) -> str:
     ):
         if key in card:
             lines += _scores_line(label, card[key])
+            if card[key].get("meta"):
+                lines.append(f"    data source: {json.dumps(card[key]['meta'], sort_keys=True)}")
     versions = card.get("trained_with")
     if versions:
         lines.append("  trained with: " + ", ".join(f"{k} {v}" for k, v in versions.items()))
