@@ -70,9 +70,6 @@ def main(argv: list[str] | None = None) -> None:
     """
     try:
         app(args=argv, standalone_mode=True)
-    except SystemExit as exc:
-        if exc.code not in (0, None):  # success returns, so main() can be called in-process
-            raise
     except NotBuiltError as exc:
         typer.echo(f"Not built yet: {exc}", err=True)
         sys.exit(2)
