@@ -44,7 +44,7 @@ import numpy as np
 from .analyticsdb import animal_clause, create_tables
 from .budgets import ACTIVE_BEHAVIOURS, DAY_S, HOUR_COLUMNS, HOUR_S, BudgetLedger, DailyBudget
 from .lineprotocol import SCHEMA, Point, register_converter
-from .types import NO_DATA
+from .types import CAUTION, NO_DATA
 
 __all__ = [
     "CAUTION",
@@ -55,12 +55,6 @@ __all__ = [
     "Rule",
     "TITLES",
 ]
-
-# The same words as the command line's (gateway/cli.py), so every place says one thing.
-CAUTION = (
-    "Alerts are decision support, not a diagnosis: examine the animal and consult a"
-    " veterinarian; local regulations and licensed veterinary practice prevail."
-)
 
 
 class Rule(StrEnum):

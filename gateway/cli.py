@@ -13,13 +13,9 @@ import typer
 from . import __version__
 from .commands import bench, config, demo, evaluate, model, report, run, simulate, train
 from .errors import BoutlineError, ConfigError, NotBuiltError
+from .types import CAUTION
 
 __all__ = ["app", "main"]
-
-CAUTION = (
-    "Alerts are decision support, not a diagnosis: examine the animal and consult a"
-    " veterinarian; local regulations and licensed veterinary practice prevail."
-)
 
 app = typer.Typer(
     name="boutline",

@@ -66,6 +66,38 @@ def validate_filter(topic_filter: str) -> str:
     return topic_filter
 
 
+def secure_client(
+    client: Any,
+    *,
+    username: str,
+    password: str,
+    tls: bool,
+    ca_file: str = "",
+    cert_file: str = "",
+    key_file: str = "",
+) -> None:
+    """Credentials and TLS for any of our paho clients (ingest and the MQTT sink alike).
+
+    Unusable TLS files raise ConfigError naming the settings to check.
+    """
+    if username:
+        client.username_pw_set(username, password or None)
+    if not tls:
+        return
+    try:
+        client.tls_set(
+            ca_certs=ca_file or None,
+            certfile=cert_file or None,
+            keyfile=key_file or None,
+            cert_reqs=ssl.CERT_REQUIRED,
+            tls_version=ssl.PROTOCOL_TLS_CLIENT,
+        )
+    except (OSError, ssl.SSLError, ValueError) as exc:
+        raise ConfigError(
+            f"mqtt TLS files cannot be used ({exc}); check mqtt.ca_file, cert_file, key_file"
+        ) from exc
+
+
 class Ingest:
     """Subscribe, keep the session, and queue raw messages for the daemon."""
 
@@ -197,21 +229,15 @@ class Ingest:
         client.on_connect_fail = self._on_connect_fail
         # paho doubles the delay from min to max and resets it after a successful CONNACK
         client.reconnect_delay_set(min_delay=s.reconnect_min_s, max_delay=s.reconnect_max_s)  # type: ignore[arg-type]
-        if s.username:
-            client.username_pw_set(s.username, s.password.get_secret_value() or None)
-        if s.tls:
-            try:
-                client.tls_set(
-                    ca_certs=s.ca_file or None,
-                    certfile=s.cert_file or None,
-                    keyfile=s.key_file or None,
-                    cert_reqs=ssl.CERT_REQUIRED,
-                    tls_version=ssl.PROTOCOL_TLS_CLIENT,
-                )
-            except (OSError, ssl.SSLError, ValueError) as exc:
-                raise ConfigError(
-                    f"mqtt TLS files cannot be used ({exc}); check mqtt.ca_file, cert_file, key_file"
-                ) from exc
+        secure_client(
+            client,
+            username=s.username,
+            password=s.password.get_secret_value(),
+            tls=s.tls,
+            ca_file=s.ca_file,
+            cert_file=s.cert_file,
+            key_file=s.key_file,
+        )
         connect_kwargs: dict[str, Any] = {"keepalive": s.keepalive_s}
         if v5:
             props = Properties(PacketTypes.CONNECT)

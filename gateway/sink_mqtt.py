@@ -20,7 +20,6 @@ from __future__ import annotations
 
 import contextlib
 import json
-import ssl
 import threading
 import time
 import urllib.parse
@@ -30,10 +29,11 @@ from datetime import UTC, datetime
 from typing import Any
 
 from . import __version__
-from .cli import CAUTION
 from .config import Settings
 from .errors import ConfigError, SinkRejected, SinkUnavailable
+from .ingest import secure_client
 from .outbox import Record
+from .types import CAUTION
 
 __all__ = [
     "CAUTION",
@@ -256,21 +256,16 @@ class MqttSink:
         proto = mqtt.MQTTv5 if self._protocol == "5" else mqtt.MQTTv311
         c = mqtt.Client(mqtt.CallbackAPIVersion.VERSION2, client_id=self.client_id, protocol=proto)
         c.will_set(self.topics.status, self._status(False), qos=1, retain=True)
-        if self._auth[0]:
-            c.username_pw_set(*self._auth)
         tls, ca, cert, key = self._tls
-        if tls:
-            try:
-                c.tls_set(
-                    ca_certs=ca or None,
-                    certfile=cert or None,
-                    keyfile=key or None,
-                    cert_reqs=ssl.CERT_REQUIRED,
-                )
-            except (OSError, ValueError, ssl.SSLError) as exc:
-                raise ConfigError(
-                    f"mqtt TLS files cannot be used: {exc}; check mqtt.ca_file/cert_file/key_file"
-                ) from exc
+        secure_client(
+            c,
+            username=self._auth[0],
+            password=self._auth[1],
+            tls=tls,
+            ca_file=ca,
+            cert_file=cert,
+            key_file=key,
+        )
         c.connect_timeout = self.timeout_s
         c.reconnect_delay_set(1, 60)
         c.on_connect = self._on_connect

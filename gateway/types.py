@@ -16,6 +16,7 @@ import numpy as np
 
 __all__ = [
     "BEHAVIOURS",
+    "CAUTION",
     "Behaviour",
     "BoutClosed",
     "CollarGravity",
@@ -40,6 +41,12 @@ class Behaviour(StrEnum):
 
 
 BEHAVIOURS: tuple[str, ...] = tuple(b.value for b in Behaviour)
+
+# Said wherever an alert is shown or sent (CLI, MQTT payloads, reports, docs): one wording.
+CAUTION = (
+    "Alerts are decision support, not a diagnosis: examine the animal and consult a"
+    " veterinarian; local regulations and licensed veterinary practice prevail."
+)
 
 # Label for time that could not be classified (missing frames, collar silent).
 NO_DATA = "no_data"

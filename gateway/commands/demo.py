@@ -449,7 +449,7 @@ def _summary(gateway: Any, view: HerdView, store: Any, pub_state: dict, wall_s: 
 def _print_summary(console: Any, summary: dict[str, Any], view: HerdView) -> None:
     from rich.table import Table
 
-    from ..cli import CAUTION
+    from ..types import CAUTION
 
     if not summary:
         return
