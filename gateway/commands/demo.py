@@ -429,7 +429,7 @@ def _wait_drained(
 
 def _summary(gateway: Any, view: HerdView, store: Any, pub_state: dict, wall_s: float) -> dict:
     s = gateway.status()
-    bouts = store._query("SELECT COUNT(*) FROM bouts")[0][0] if store else 0
+    bouts = store.counts()["bouts"] if store else 0
     return {
         "animals": len(view.animals),
         "frames_published": pub_state["result"].frames

@@ -68,6 +68,7 @@ def serve(settings: Any, stop: threading.Event, *, install_sighup: bool = True) 
     store = Store.open(
         settings.data_dir / STORE_FILE,
         checkpoint_pages=settings.store.checkpoint_pages,
+        retention_days=settings.store.retention_days,
     )
     outputs = http = None
     try:
