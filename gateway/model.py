@@ -220,6 +220,9 @@ def load_model(path: str | Path | None = None) -> Model:
     if not p.is_file():
         hint = "" if path else " (the shipped default is missing: reinstall boutline)"
         raise ModelError(f"model file {p} does not exist{hint}")
-    model = check_contract(p)
+    try:
+        model = check_contract(p)
+    except ModelError as exc:  # name the file: the daemon's one error line must say which
+        raise ModelError(f"{p}: {exc}") from exc
     model.source = str(p)
     return model

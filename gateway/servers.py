@@ -150,6 +150,8 @@ def _render(template: Path | None, default: str, **values: object) -> str:
 
 MOSQUITTO_DEFAULT = """\
 per_listener_settings false
+# as root, Mosquitto would drop to a user that cannot write the persistence file here
+user root
 listener {port} 127.0.0.1
 allow_anonymous true
 persistence true

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import json
 import os
+import re
 import signal
 import subprocess
 import sys
@@ -24,7 +25,7 @@ from prometheus_client.parser import text_string_to_metric_families
 from gateway.bench import pid_peak_rss_mb
 from gateway.servers import free_port
 
-__all__ = ["Daemon", "toml"]
+__all__ = ["Daemon", "finish", "publish_herd", "toml", "write_assignments"]
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -43,6 +44,58 @@ def toml(sections: Mapping[str, Mapping[str, Any]]) -> str:
                 lines.append(f"{k} = {json.dumps(str(v))}")
         lines.append("")
     return "\n".join(lines)
+
+
+def write_assignments(path: Path, n_animals: int) -> Path:
+    """The simulator's fittings for a herd of ``n_animals`` (C0001 -> cow-001, ...), since 2020."""
+    from simulator.herd import animal_id, collar_id
+
+    path.parent.mkdir(parents=True, exist_ok=True)
+    rows = "".join(
+        f"{collar_id(i)},{animal_id(i)},2020-01-01T00:00:00Z,\n" for i in range(n_animals)
+    )
+    path.write_text("collar,animal,from,to\n" + rows, encoding="utf-8")
+    return path
+
+
+def publish_herd(
+    host: str,
+    port: int,
+    site: str,
+    *,
+    herd: int,
+    duration_s: float,
+    speed: float | None = None,
+    seed: int = 0,
+    frame_s: float = 10.0,
+    start: float | None = None,
+) -> subprocess.Popen:
+    """``boutline simulate publish`` (QoS 1, binary, no simulated loss or silences), started."""
+    argv = [
+        sys.executable, "-m", "gateway.cli", "simulate", "publish", "--host", host,
+        "--port", str(port), "--site", site, "--herd", str(herd), "--seed", str(seed),
+        "--duration", str(duration_s), "--frame-s", str(frame_s), "--format", "binary",
+        "--qos", "1", "--loss", "0", "--silence", "0",
+        *(["--flat-out"] if speed is None else ["--speed", str(speed)]),
+        *([] if start is None else ["--start", str(start)]),
+    ]  # fmt: skip
+    return subprocess.Popen(
+        argv, cwd=ROOT, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True
+    )
+
+
+def finish(proc: subprocess.Popen, timeout_s: float = 120.0) -> int:
+    """Wait for a publisher; the frames it sent. Raises if it failed; always closes its pipes."""
+    try:
+        out, err = proc.communicate(timeout=timeout_s)
+    except subprocess.TimeoutExpired:
+        proc.kill()
+        proc.communicate()
+        raise AssertionError(f"publisher still running after {timeout_s:g} s") from None
+    assert proc.returncode == 0, err[-3000:]
+    sent = re.search(r"sent (\d+) frames", out)
+    assert sent, out[-500:]
+    return int(sent.group(1))
 
 
 class Daemon:
