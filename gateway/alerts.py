@@ -9,11 +9,22 @@ Rules (thresholds in ``[alerts]`` of the config; sources beside the defaults the
 
 - ``rumination_drop``: rumination in the last 24 fully accounted hours, per covered time,
   at least ``rumination_drop`` (25 %) below the median of the animal's previous
-  ``baseline_days`` (7) full days with at least ``min_coverage`` classified. A drop of
-  20-30 % against the cow's own 7-10 day baseline is the usual rule (FIELD.md, health signals).
-- ``activity_rise`` (possible heat): walking time in the last ``activity_window_h`` (2) hours
-  at least ``activity_ratio`` (2x) the mean of the same clock hours on her previous days;
-  FIELD.md cites about 2.8-fold activity for 8-9 h in estrus (Lovendahl & Chagunda 2010).
+  ``baseline_days`` (7) full days with at least ``min_coverage`` classified, and at least
+  ``rumination_min_z`` (2) of her own day-to-day spreads below it; or a slow decline: the
+  mean of the last ``rumination_sustained_h`` (48) hours at least
+  ``rumination_sustained_drop`` (12 %) below the mean of her 7 days before them and
+  ``rumination_sustained_min_z`` (1.5) of her spread for a two-day mean below it. A drop of
+  20-30 % against the cow's own 7-10 day baseline, or a z-score of 2-3, is the usual rule
+  (FIELD.md, health signals); 12 % over two days is about 2 SDs for a cow whose daily
+  rumination varies by 8 % (within-cow variation 5-10 %, from memory).
+- ``activity_rise`` (possible heat): walking time in the last ``activity_window_h`` (8)
+  hours at least ``activity_ratio`` (2.2x) the mean of the same clock hours on up to
+  ``activity_baseline_days`` (14) previous days, at least ``activity_min_z`` (3) of her
+  own spread for those hours above it, with walking in ``activity_min_active_h`` (7) of
+  the hours; FIELD.md cites about 2.8-fold activity for 8-9 h in estrus (Lovendahl &
+  Chagunda 2010). The earlier default (a 2-h window, 2x, ratio only) is
+  ``activity_window_h = 2``, ``activity_ratio = 2``, ``activity_min_z = 0``,
+  ``activity_min_active_h = 0``, ``activity_baseline_days = 7``.
 - ``prolonged_inactivity``: no feeding, grazing or walking for ``inactive_h`` hours while the
   collar reports.
 - ``collar_silent``: no frame for ``silent_min`` minutes.
@@ -155,33 +166,27 @@ def rumination_finding(
     hours: np.ndarray,
     days: Sequence[DailyBudget],
 ) -> Finding:
-    """Last 24 h (``hours``: 24 rows of seconds ending at ``window_end``) vs own days."""
+    """Rumination in the last 24 h, and over the last ``rumination_sustained_h`` hours, vs
+    her own days. ``hours``: rows of seconds per hour, the last ending at ``window_end``
+    (24 rows at least; the sustained reading needs ``rumination_sustained_h`` of them).
+
+    Two readings raise it: the last 24 h ``rumination_drop`` below the median of her days
+    (and ``rumination_min_z`` of her own spread), or a slow decline, the mean of the last
+    ``rumination_sustained_h`` hours ``rumination_sustained_drop`` below the mean of her
+    days before them. An illness takes days to reach its full drop (FIELD.md: 20-40 %
+    against her own recent days [M]); two days a little down say more than one day.
+    """
     f = Finding(Rule.RUMINATION_DROP, animal, animal)
-    ws = window_end - DAY_S
-    classified = float(hours[:, _CLASSIFIED].sum())
-    cov = classified / DAY_S
-    if cov < cfg.min_coverage:
-        return _not_ready(
-            f, f"last 24 h only {_pct(cov)} classified, {_pct(cfg.min_coverage)} needed"
-        )
-    value = float(hours[:, _COL["ruminating"]].sum()) / classified * 1440.0
-    base_days = _baseline_days(cfg, days, ws)
-    if len(base_days) < cfg.min_baseline_days:
-        return _not_ready(
-            f,
-            f"{len(base_days)} day(s) with >= {_pct(cfg.min_coverage)} coverage in the last"
-            f" {cfg.lookback_days} days, {cfg.min_baseline_days} needed",
-        )
-    per_day = [b.minutes.get("ruminating", 0.0) / b.classified_min * 1440.0 for b in base_days]
+    day = _rumination_reading(cfg, hours[-24:], days, window_end)
+    if isinstance(day, str):
+        return _not_ready(f, day)
+    value, cov, base_days, per_day = day
     baseline = float(np.median(per_day))
     drop = 1.0 - value / baseline if baseline > 0 else 0.0
     # spread of her own days, robust (MAD scaled to an SD), never below 5 % of the baseline
     sd = max(1.4826 * float(np.median(np.abs(np.asarray(per_day) - baseline))), 0.05 * baseline)
     z = (baseline - value) / sd if sd > 0 else 0.0
-    f.raise_ = drop >= cfg.rumination_drop and z >= cfg.rumination_min_z
-    f.clear = drop < cfg.rumination_clear
-    f.severity = drop
-    f.at, f.hold_s = window_end, (cfg.rumination_hold_h - 1) * HOUR_S
+    day_raise = drop >= cfg.rumination_drop and z >= cfg.rumination_min_z
     f.evidence = {
         "value": round(value, 1),
         "baseline": round(baseline, 1),
@@ -192,17 +197,81 @@ def rumination_finding(
         "min_z": cfg.rumination_min_z,
         "clear_below": cfg.rumination_clear,
         "coverage": round(cov, 4),
-        "window_start": ws,
+        "window_start": window_end - DAY_S,
         "window_end": window_end,
         "baseline_days": [b.day for b in base_days],
         "baseline_values": [round(v, 1) for v in per_day],
     }
-    f.message = (
+    message = (
         f"{animal}: rumination {value:.0f} min in the last 24 h, {_pct(max(drop, 0))} below"
         f" her median of {baseline:.0f} min/day over {len(base_days)} recent days."
     )
+    n_s = cfg.rumination_sustained_h
+    slow_raise, slow_clear, slow_drop = False, True, 0.0
+    slow = None
+    if cfg.rumination_sustained_drop > 0 and hours.shape[0] >= n_s:
+        slow = _rumination_reading(cfg, hours[-n_s:], days, window_end)
+    if slow is not None and not isinstance(slow, str):
+        s_value, s_cov, s_days, s_per_day = slow
+        s_base = float(np.mean(s_per_day))  # the mean: steadier than a median of 7
+        slow_drop = 1.0 - s_value / s_base if s_base > 0 else 0.0
+        # her day-to-day SD (never below 5 % of the baseline), shrunk for a mean of days
+        s_sd = max(float(np.std(s_per_day, ddof=1)), 0.05 * s_base) / math.sqrt(n_s / 24.0)
+        s_z = (s_base - s_value) / s_sd if s_sd > 0 else 0.0
+        slow_raise = (
+            slow_drop >= cfg.rumination_sustained_drop and s_z >= cfg.rumination_sustained_min_z
+        )
+        slow_clear = slow_drop < cfg.rumination_sustained_clear
+        f.evidence |= {
+            "sustained_value": round(s_value, 1),
+            "sustained_baseline": round(s_base, 1),
+            "sustained_drop": round(slow_drop, 4),
+            "sustained_z": round(s_z, 2),
+            "sustained_h": n_s,
+            "sustained_threshold": cfg.rumination_sustained_drop,
+            "sustained_min_z": cfg.rumination_sustained_min_z,
+            "sustained_clear_below": cfg.rumination_sustained_clear,
+            "sustained_coverage": round(s_cov, 4),
+            "sustained_window_start": window_end - n_s * HOUR_S,
+            "sustained_baseline_days": [b.day for b in s_days],
+        }
+        if slow_raise and not day_raise:
+            message = (
+                f"{animal}: rumination {s_value:.0f} min/day over the last {n_s} h,"
+                f" {_pct(max(slow_drop, 0))} below her mean of {s_base:.0f} min/day over"
+                f" {len(s_days)} days before (last 24 h: {_pct(max(drop, 0))} below)."
+            )
+    elif cfg.rumination_sustained_drop > 0:
+        f.evidence["sustained_not_judged"] = slow or f"fewer than {n_s} h known"
+    f.raise_ = day_raise or slow_raise
+    f.clear = drop < cfg.rumination_clear and slow_clear
+    f.severity = max(drop, slow_drop)
+    f.evidence["raised_by"] = [k for k, v in (("24 h", day_raise), (f"{n_s} h", slow_raise)) if v]
+    f.at, f.hold_s = window_end, (cfg.rumination_hold_h - 1) * HOUR_S
+    f.message = message
     f.advice = "Look at her feed intake and general condition."
     return f
+
+
+def _rumination_reading(
+    cfg: Any, hours: np.ndarray, days: Sequence[DailyBudget], window_end: float
+) -> tuple[float, float, list[DailyBudget], list[float]] | str:
+    """Rumination per 24 h of classified time in ``hours`` (ending at ``window_end``), its
+    coverage, and her baseline days before the window with their values; or why not."""
+    span_h = hours.shape[0]
+    classified = float(hours[:, _CLASSIFIED].sum())
+    cov = classified / (span_h * HOUR_S)
+    if cov < cfg.min_coverage:
+        return f"last {span_h} h only {_pct(cov)} classified, {_pct(cfg.min_coverage)} needed"
+    value = float(hours[:, _COL["ruminating"]].sum()) / classified * 1440.0
+    base_days = _baseline_days(cfg, days, window_end - span_h * HOUR_S)
+    if len(base_days) < cfg.min_baseline_days:
+        return (
+            f"{len(base_days)} day(s) with >= {_pct(cfg.min_coverage)} coverage in the last"
+            f" {cfg.lookback_days} days, {cfg.min_baseline_days} needed"
+        )
+    per_day = [b.minutes.get("ruminating", 0.0) / b.classified_min * 1440.0 for b in base_days]
+    return value, cov, base_days, per_day
 
 
 def _baseline_days(cfg: Any, days: Sequence[DailyBudget], before: float) -> list[DailyBudget]:
@@ -217,6 +286,13 @@ def _baseline_days(cfg: Any, days: Sequence[DailyBudget], before: float) -> list
     return good[-cfg.baseline_days :]
 
 
+# An hour with at least this much walking counts as an hour she was on her feet and moving.
+_ACTIVE_HOUR_S = 60.0
+# Her same-hours spread is taken from 5-14 values: never below 30 % of the baseline, so a
+# cow with a few steady days is not read as certain (common practice, no source).
+_ACTIVITY_SD_FLOOR = 0.3
+
+
 def activity_finding(
     cfg: Any,
     animal: str,
@@ -227,44 +303,63 @@ def activity_finding(
     """Walking in ``window`` (rows = the last hours) vs the same hours on earlier days.
 
     ``earlier`` holds ``(window_end on that day, rows or None)`` for k = 1, 2, ... days back.
+    Raised when walking is ``activity_ratio`` times her mean for these hours, at least
+    ``activity_min_z`` of her own spread above it, and she walked in at least
+    ``activity_min_active_h`` of the window's hours: heat is a rise that lasts (about
+    2.8-fold for 8-9 h, Lovendahl & Chagunda 2010, FIELD.md), a chance walk is not.
     """
     f = Finding(Rule.ACTIVITY_RISE, animal, animal)
-    span = window.shape[0] * HOUR_S
+    n_h = window.shape[0]
+    span = n_h * HOUR_S
     cov = float(window[:, _CLASSIFIED].sum()) / span
     if cov < cfg.min_coverage:
         return _not_ready(
-            f,
-            f"last {window.shape[0]} h only {_pct(cov)} classified, {_pct(cfg.min_coverage)} needed",
+            f, f"last {n_h} h only {_pct(cov)} classified, {_pct(cfg.min_coverage)} needed"
         )
-    index = float(window[:, _COL["walking"]].sum()) / 60.0
+    walk = window[:, _COL["walking"]]
+    index = float(walk.sum()) / 60.0
+    active_h = int((walk >= _ACTIVE_HOUR_S).sum())
     base: list[float] = []
     used: list[float] = []
+    want = min(cfg.activity_baseline_days, cfg.lookback_days)
     for end_k, rows in earlier:
         if rows is None or float(rows[:, _CLASSIFIED].sum()) / span < cfg.min_coverage:
             continue
         base.append(float(rows[:, _COL["walking"]].sum()) / 60.0)
         used.append(end_k)
-        if len(base) == cfg.baseline_days:
+        if len(base) == want:
             break
     if len(base) < cfg.min_baseline_days:
         return _not_ready(
             f,
-            f"the same {window.shape[0]} h had >= {_pct(cfg.min_coverage)} coverage on"
+            f"the same {n_h} h had >= {_pct(cfg.min_coverage)} coverage on"
             f" {len(base)} earlier day(s), {cfg.min_baseline_days} needed",
         )
     baseline = float(np.mean(base))
-    ratio = index / max(baseline, cfg.activity_floor_min)
-    f.raise_ = ratio >= cfg.activity_ratio
+    ref = max(baseline, cfg.activity_floor_min)
+    ratio = index / ref
+    sd = max(float(np.std(base, ddof=1)), _ACTIVITY_SD_FLOOR * ref)
+    z = (index - ref) / sd
+    f.raise_ = (
+        ratio >= cfg.activity_ratio
+        and z >= cfg.activity_min_z
+        and active_h >= cfg.activity_min_active_h
+    )
     f.clear = ratio < cfg.activity_clear_ratio
     f.severity = ratio
     f.at, f.hold_s = window_end, (cfg.activity_hold_h - 1) * HOUR_S
     f.evidence = {
         "value": round(index, 2),
         "baseline": round(baseline, 2),
-        "unit": f"min walking per {window.shape[0]} h",
+        "unit": f"min walking per {n_h} h",
         "ratio": round(ratio, 3),
+        "z": round(z, 2),
+        "baseline_sd": round(sd, 2),
+        "active_hours": active_h,
         "floor": cfg.activity_floor_min,
         "threshold": cfg.activity_ratio,
+        "min_z": cfg.activity_min_z,
+        "min_active_hours": cfg.activity_min_active_h,
         "clear_below": cfg.activity_clear_ratio,
         "coverage": round(cov, 4),
         "window_start": window_end - span,
@@ -273,8 +368,8 @@ def activity_finding(
         "baseline_values": [round(v, 2) for v in base],
     }
     f.message = (
-        f"{animal}: {index:.0f} min walking in the last {window.shape[0]} h, {ratio:.1f}x her"
-        f" usual {baseline:.1f} min for these hours."
+        f"{animal}: {index:.0f} min walking in the last {n_h} h (in {active_h} of those hours),"
+        f" {ratio:.1f}x her usual {baseline:.1f} min for these hours."
     )
     f.advice = "Possible heat: watch her for signs of estrus."
     return f
@@ -684,7 +779,10 @@ class AlertEngine:
         self._last_end: dict[str, float] = {}
         self._days: dict[str, tuple[str, list[DailyBudget]]] = {}
         self._times: dict[float, list[float]] = {}
-        self._hours = _HourCache((cfg.lookback_days + 2) * 24 + cfg.activity_window_h + 2)
+        self._hours = _HourCache(
+            max((cfg.lookback_days + 2) * 24 + cfg.activity_window_h, cfg.rumination_sustained_h)
+            + 2
+        )
 
     def ensure_schema(self, conn: sqlite3.Connection) -> None:
         self.book.ensure_schema(conn)
@@ -727,10 +825,15 @@ class AlertEngine:
         n_w = self.cfg.activity_window_h
         # one read covers the last 24 h and the same hours on every lookback day
         h_end = int(end // HOUR_S)
-        h0 = h_end - (self.cfg.lookback_days + 1) * 24 - n_w - 1
+        h0 = (
+            h_end
+            - max((self.cfg.lookback_days + 1) * 24 + n_w, self.cfg.rumination_sustained_h)
+            - 1
+        )
         big = self._hours.get(conn, self.ledger, animal, h0, h_end, cur["through"])
         days = self._recent_days(conn, animal, end - DAY_S)
-        out.append(rumination_finding(self.cfg, animal, end, big[-24:], days))
+        n_r = max(24, self.cfg.rumination_sustained_h)
+        out.append(rumination_finding(self.cfg, animal, end, big[-n_r:], days))
         earlier: list[tuple[float, np.ndarray | None]] = []
         for e_k in self._same_times(end):
             i = int(e_k // HOUR_S) - h0
@@ -793,7 +896,9 @@ def _alert_points(fact: dict[str, Any], site: str) -> list[Point]:
     else:
         baseline = float(ev["baseline"])
     change = (value - baseline) / baseline * 100.0 if baseline else 0.0
-    score = -float(ev["z"]) if "z" in ev else None
+    # signed like the change: rumination's z counts below the baseline, activity's above it
+    z = float(ev["z"]) if "z" in ev else None
+    score = None if z is None else (z if rule is Rule.ACTIVITY_RISE else -z)
     fields = {
         "value": value,
         "baseline": baseline,

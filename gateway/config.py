@@ -218,13 +218,34 @@ class AlertsSettings(_Section):
     rumination_min_z: float = Field(
         2.0, ge=0, le=10, description="and this many SDs of her own days below (0: off)"
     )
-    rumination_hold_h: int = Field(3, ge=1, le=48, description="raise once it held this long")
-    activity_window_h: int = Field(2, ge=1, le=12, description="rolling activity window")
-    activity_ratio: float = Field(2.0, gt=1, le=20, description="raise: index this many times")
+    rumination_hold_h: int = Field(6, ge=1, le=48, description="raise once it held this long")
+    rumination_sustained_h: int = Field(
+        48, ge=25, le=168, description="or: the mean of this many hours (a slow decline)"
+    )
+    rumination_sustained_drop: float = Field(
+        0.12, ge=0, lt=1, description="raise: that mean this far below her days' mean (0: off)"
+    )
+    rumination_sustained_min_z: float = Field(
+        1.5, ge=0, le=10, description="and this many SDs of her days' mean below (0: off)"
+    )
+    rumination_sustained_clear: float = Field(
+        0.06, ge=0, lt=1, description="clear: that mean back within this"
+    )
+    activity_window_h: int = Field(8, ge=1, le=12, description="rolling activity window")
+    activity_ratio: float = Field(2.2, gt=1, le=20, description="raise: index this many times")
     activity_clear_ratio: float = Field(1.5, ge=1, le=20, description="clear: below this")
     activity_hold_h: int = Field(2, ge=1, le=24, description="raise once it held this long")
     activity_floor_min: float = Field(
         5.0, ge=0, le=120, description="baseline walking per window never counts below this"
+    )
+    activity_baseline_days: int = Field(
+        14, ge=3, le=60, description="same hours on up to this many days (within lookback)"
+    )
+    activity_min_z: float = Field(
+        3.0, ge=0, le=10, description="and this many SDs of her own same hours above (0: off)"
+    )
+    activity_min_active_h: int = Field(
+        7, ge=0, le=12, description="and walking in this many of the window's hours (0: off)"
     )
     inactive_h: float = Field(12.0, gt=0, le=72, description="no feeding/grazing/walking this long")
     silent_min: float = Field(60.0, gt=0, le=10080, description="no frames this long")
@@ -245,6 +266,14 @@ class AlertsSettings(_Section):
             raise ValueError("rumination_clear must be below rumination_drop (hysteresis)")
         if self.activity_clear_ratio >= self.activity_ratio:
             raise ValueError("activity_clear_ratio must be below activity_ratio (hysteresis)")
+        if self.rumination_sustained_drop and (
+            self.rumination_sustained_clear >= self.rumination_sustained_drop
+        ):
+            raise ValueError(
+                "rumination_sustained_clear must be below rumination_sustained_drop (hysteresis)"
+            )
+        if self.activity_min_active_h > self.activity_window_h:
+            raise ValueError("activity_min_active_h must be <= activity_window_h")
         if self.battery_clear_v <= self.battery_low_v:
             raise ValueError("battery_clear_v must be above battery_low_v (hysteresis)")
         return self

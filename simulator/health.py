@@ -23,17 +23,26 @@ from dataclasses import asdict, dataclass, field
 import numpy as np
 
 from . import rand
-from .schedule import DAY_S, LYING, Scenario, State
+from .schedule import DAY_S, LYING, Scenario, Schedule, State
 
-__all__ = ["HealthEvent", "apply_events", "draw_events"]
+__all__ = ["CLINICAL_DROP", "HealthEvent", "apply_events", "draw_events", "usual_walking_s"]
 
 _STREAM_EVENTS = 41
 HOUR = 3600.0
+# an illness counts as clinical once rumination is this far down (FIELD.md: 20-40 % [M])
+CLINICAL_DROP = 0.2
+_USUAL_DAYS = 7  # an animal's usual walking: the same hours over up to a week before
 
 
 @dataclass
 class HealthEvent:
-    """One injected event. ``onset`` and ``end`` are unix seconds; ``params`` say how much."""
+    """One injected event. ``onset`` and ``end`` are unix seconds; ``params`` say how much.
+
+    ``onset`` is where the change starts. ``clinical_onset`` is where it is plainly there:
+    for an illness the instant its rumination cut first reaches ``CLINICAL_DROP`` (20 %,
+    the bottom of the drop FIELD.md gives for illness in general [M]; on a 2-4 day decline
+    that is up to 4 days after ``onset``); for estrus and calving the same as ``onset``.
+    """
 
     kind: str  # "illness" | "estrus" | "calving"
     animal: str
@@ -42,6 +51,15 @@ class HealthEvent:
     end: float
     params: dict[str, float] = field(default_factory=dict)
     source: str = ""
+    clinical_onset: float | None = None
+
+    def __post_init__(self) -> None:
+        if self.clinical_onset is None:
+            self.clinical_onset = self.onset
+            if self.kind == "illness":
+                share = min(CLINICAL_DROP / self.params["rumination_drop"], 1.0)
+                ramp = self.params["ramp_days"] * DAY_S * share
+                self.clinical_onset = round(float(self.onset + ramp), 3)
 
     def to_json(self) -> dict:
         return asdict(self)
@@ -163,8 +181,12 @@ def apply_events(
     start: np.ndarray,
     end: np.ndarray,
     state: np.ndarray,
+    history: Schedule | None = None,
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
-    """Edit one day's bouts for the events of the animals present; returns new arrays."""
+    """Edit one day's bouts for the events of the animals present; returns new arrays.
+
+    ``history`` (the schedule of the days before) gives an animal's usual walking for the
+    hours of an estrus window; without it the day's own walking there is the reference."""
     if not events:
         return animal, start, end, state
     a, s, e, st = animal.copy(), start.copy(), end.copy(), state.copy()
@@ -197,29 +219,59 @@ def apply_events(
         st = np.concatenate([st, *[x.astype(np.int8) for x in add_st]])
     for ev in events:
         if ev.kind == "estrus" and (a == ev.animal_index).any():
-            a, s, e, st = _restless(ev, seed, a, s, e, st)
+            a, s, e, st = _restless(ev, seed, a, s, e, st, history)
     return a, s, e, st
 
 
-def _restless(ev: HealthEvent, seed: int, a, s, e, st):
-    """Estrus: add walking episodes in the window until walking is ``activity_fold`` times
-    what it was (at least that fold over a quiet 1 % of the window)."""
+def _walking_s(a, s, e, st, who: int, w0: float, w1: float) -> float:
+    """Seconds animal ``who`` walks inside ``[w0, w1)``."""
+    mine = (a == who) & (st == State.WALK) & (e > w0) & (s < w1)
+    return float(np.clip(np.minimum(e[mine], w1) - np.maximum(s[mine], w0), 0.0, None).sum())
+
+
+def usual_walking_s(history: Schedule | None, who: int, w0: float, w1: float) -> float | None:
+    """Mean walking of animal ``who`` in the same clock hours on up to ``_USUAL_DAYS``
+    earlier days held by ``history``; None when it holds none of them."""
+    if history is None or who >= history.n_animals:
+        return None
+    s, e, st = history.for_animal(who)
+    if s.size == 0:
+        return None
+    seen = []
+    for k in range(1, _USUAL_DAYS + 1):
+        x0, x1 = w0 - k * DAY_S, w1 - k * DAY_S
+        if x0 < max(history.epoch, float(s[0])) or x1 > float(e[-1]):
+            break
+        seen.append(_walking_s(np.full(s.shape, who), s, e, st, who, x0, x1))
+    return float(np.mean(seen)) if seen else None
+
+
+def _restless(ev: HealthEvent, seed: int, a, s, e, st, history: Schedule | None = None):
+    """Estrus: add walking episodes in the window until she walks ``activity_fold`` times
+    her usual for these hours (her mean over the previous days, the reference the
+    published fold is taken against; the day's own walking when no earlier day is known).
+    A quiet reference counts as 1 % of the window."""
     w0, w1 = ev.onset, ev.end
-    mine = (a == ev.animal_index) & (e > w0) & (s < w1)
-    if not mine.any():
+    who = ev.animal_index
+    if not ((a == who) & (e > w0) & (s < w1)).any():
         return a, s, e, st
-    ov = np.clip(np.minimum(e, w1) - np.maximum(s, w0), 0.0, None)
-    walk_now = float(ov[mine & (st == State.WALK)].sum())
-    fold = ev.params["activity_fold"]
-    want = (fold - 1.0) * max(walk_now, 0.01 * (w1 - w0))
+    usual = usual_walking_s(history, who, w0, w1)
+    if usual is None:
+        usual = _walking_s(a, s, e, st, who, w0, w1)
+    want = ev.params["activity_fold"] * max(usual, 0.01 * (w1 - w0))
     ep = 150.0  # a restless walking episode of 2.5 min
-    n_ep = int(np.ceil(want / ep))
-    k = rand.key(seed, _STREAM_EVENTS, ev.animal_index, 99)
-    # episodes spread evenly with jitter, so they do not pile on each other
-    slots = (w1 - w0 - ep) / max(n_ep, 1)
-    starts = w0 + slots * (np.arange(n_ep) + 0.8 * rand.uniform(k, np.arange(n_ep)))
-    for x in starts:
-        a, s, e, st = _overwrite(a, s, e, st, ev.animal_index, x, x + ep, State.WALK)
+    k = rand.key(seed, _STREAM_EVENTS, who, 99)
+    # a few rounds: an episode laid over walking she did anyway adds less than its length
+    for rnd in range(4):
+        deficit = want - _walking_s(a, s, e, st, who, w0, w1)
+        n_ep = int(np.floor(deficit / ep + 0.5))
+        if n_ep <= 0:
+            break
+        # episodes spread evenly with jitter, so they do not pile on each other
+        slots = (w1 - w0 - ep) / n_ep
+        u = rand.uniform(k, np.arange(n_ep) + 1000 * rnd)
+        for x in w0 + slots * (np.arange(n_ep) + 0.8 * u):
+            a, s, e, st = _overwrite(a, s, e, st, who, x, x + ep, State.WALK)
     return a, s, e, st
 
 

@@ -244,9 +244,8 @@ class Herd:
         """Generate behaviour schedules up to unix time ``until``."""
         while self._covered < until:
             a, s, e, st, _d0, d1 = self._builder.next_day()
-            a, s, e, st = health.apply_events(
-                self._local_events, self._scenario_by_index, self.seed, a, s, e, st
-            )
+            events, scen = self._local_events, self._scenario_by_index
+            a, s, e, st = health.apply_events(events, scen, self.seed, a, s, e, st, self.schedule)
             self.schedule.extend(a, s, e, st)
             self._covered = d1
 

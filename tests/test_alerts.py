@@ -24,6 +24,17 @@ from gateway.types import NO_DATA, BoutClosed, CollarGravity, Frame, StateChange
 H = 3600.0
 DAY = 86400.0
 T0 = 1772323200.0  # 2026-03-01T00:00Z
+# The rules as first specified: the 24-h rumination reading alone, held 3 h; walking in a
+# 2-h window against 2x the mean of the same hours on 7 days, the ratio alone.
+FIRST_RULES = {
+    "rumination_hold_h": 3,
+    "rumination_sustained_drop": 0.0,
+    "activity_window_h": 2,
+    "activity_ratio": 2.0,
+    "activity_min_z": 0.0,
+    "activity_min_active_h": 0,
+    "activity_baseline_days": 7,
+}
 
 
 def hour(animal: str, h0: float, rum_min: float = 20.0, walk_min: float = 3.0) -> list[BoutClosed]:
@@ -77,7 +88,7 @@ def test_no_alert_without_baseline_and_the_reason_is_kept() -> None:
 
 
 def test_rumination_drop_raises_after_the_hold_updates_then_clears() -> None:
-    farm = Farm()
+    farm = Farm(**FIRST_RULES)
     assert farm.run_hours(8 * 24) == []  # 480 min/day, every day the same
     assert farm.readiness().get(Rule.RUMINATION_DROP) is None
     new = farm.run_hours(24, rum_min=10.0)  # rumination halves
@@ -114,9 +125,40 @@ def test_hysteresis_keeps_a_wavering_alert_open() -> None:
     assert [a.status for a in new] == []
 
 
-def test_activity_rise_possible_heat() -> None:
-    # estrus: activity ~2.8-fold for 8-9 h (Lovendahl & Chagunda 2010, FIELD.md)
+def test_a_slow_decline_raises_on_the_two_day_mean() -> None:
+    # 15 % less rumination for days: never 25 % in one day, but two days 15 % down say more
+    # (illness: a drop of 20-40 % reached over days, FIELD.md [M])
+    raised = {}
+    for name, cfg in (("default", {}), ("first", FIRST_RULES)):
+        farm = Farm(**cfg)
+        farm.run_hours(8 * 24)
+        new = [a for a in farm.run_hours(60, rum_min=17.0) if a.rule == Rule.RUMINATION_DROP]
+        raised[name] = [a for a in new if a.status == "raised"]
+    assert raised["first"] == []  # the 24-h reading alone never sees it
+    (a,) = raised["default"]
+    ev = a.evidence
+    assert ev["raised_by"] == ["48 h"] and ev["drop"] < 0.25
+    # 0.15 x 39/48 first reaches 12 % after 39 h at 17 min/h; held for 6 evaluations
+    assert a.at - T0 == 8 * DAY + 44 * H
+    assert ev["sustained_drop"] == pytest.approx(0.15 * 44 / 48, abs=1e-3)
+    assert ev["sustained_baseline"] == 480.0 and len(ev["sustained_baseline_days"]) == 7
+    assert ev["sustained_z"] >= 1.5 and ev["sustained_window_start"] == a.at - 48 * H
+    assert "over the last 48 h" in a.message and "below her mean of 480 min/day" in a.message
+
+
+def test_a_slow_decline_clears_once_both_readings_are_back() -> None:
     farm = Farm()
+    farm.run_hours(8 * 24)
+    farm.run_hours(60, rum_min=17.0)
+    later = [a for a in farm.run_hours(48) if a.rule == Rule.RUMINATION_DROP]
+    assert [a.status for a in later] == ["cleared"]
+    ev = later[0].evidence
+    assert ev["sustained_drop"] < 0.06 and ev["drop"] < 0.15
+
+
+def test_first_rule_activity_rise_possible_heat() -> None:
+    # estrus: activity ~2.8-fold for 8-9 h (Lovendahl & Chagunda 2010, FIELD.md)
+    farm = Farm(**FIRST_RULES)
     farm.run_hours(8 * 24)
     new = [a for a in farm.run_hours(9, walk_min=8.4) if a.rule == Rule.ACTIVITY_RISE]
     assert [a.status for a in new][:1] == ["raised"]
@@ -129,8 +171,59 @@ def test_activity_rise_possible_heat() -> None:
     assert [a.status for a in after] == ["cleared"]
 
 
-def test_the_activity_floor_stops_tiny_baselines_from_firing() -> None:
+def test_heat_is_a_rise_that_lasts() -> None:
+    # estrus: activity ~2.8-fold for 8-9 h (Lovendahl & Chagunda 2010, FIELD.md)
     farm = Farm()
+    farm.run_hours(8 * 24 + 12)  # 3 min walking every hour: 24 min per 8 h
+    new = [a for a in farm.run_hours(9, walk_min=8.4) if a.rule == Rule.ACTIVITY_RISE]
+    assert [a.status for a in new][:1] == ["raised"]
+    a = new[0]
+    ev = a.evidence
+    # 2.2x is passed after 6 h of it ((6 x 8.4 + 2 x 3) / 24 = 2.35), held for 2 evaluations
+    assert a.at - T0 == 8 * DAY + 19 * H
+    assert ev["unit"] == "min walking per 8 h" and ev["baseline"] == 24.0
+    assert ev["value"] == pytest.approx(7 * 8.4 + 3.0)
+    assert ev["ratio"] == pytest.approx(61.8 / 24.0, abs=1e-3)
+    # her same hours never varied: the spread counts as 30 % of the baseline
+    assert ev["baseline_sd"] == pytest.approx(7.2) and ev["z"] == pytest.approx(
+        37.8 / 7.2, abs=0.01
+    )
+    assert ev["active_hours"] == 8 and len(ev["baseline_values"]) == 8
+    assert "Possible heat" in a.message and "in 8 of those hours" in a.message
+    (p,) = points_for(fact_of(a), "farm")
+    assert p.fields["score"] == pytest.approx(ev["z"])  # above her usual: positive
+    after = [a for a in farm.run_hours(8) if a.rule == Rule.ACTIVITY_RISE]
+    assert [a.status for a in after] == ["cleared"]
+
+
+def test_a_short_burst_of_walking_is_not_heat() -> None:
+    for cfg, expect in (({}, []), (FIRST_RULES, ["raised"])):
+        farm = Farm(**cfg)
+        farm.run_hours(8 * 24)
+        farm.run_hours(3, walk_min=8.4)  # 2.8-fold, but for 3 h only
+        farm.run_hours(8)
+        got = [a.status for a in farm.alerts if a.rule == Rule.ACTIVITY_RISE]
+        assert got[:1] == expect, cfg
+
+
+def test_walking_crowded_into_a_few_hours_is_not_heat() -> None:
+    farm = Farm()
+    farm.run_hours(8 * 24)
+    for _ in range(3):  # 20 min in every other hour, then nothing
+        farm.run_hours(1, walk_min=20.0)
+        farm.run_hours(1, walk_min=0.0)
+    farm.run_hours(2, walk_min=0.0)
+    farm.engine._last_end.clear()  # read the last 8 h once more, as findings
+    found = farm.engine.animal_findings(farm.conn, "cow-1", farm.t)
+    assert [a for a in farm.alerts if a.rule == Rule.ACTIVITY_RISE] == []
+    (act,) = [f for f in found if f.rule == Rule.ACTIVITY_RISE]
+    # 60 min in 8 h is 2.5x her usual 24, but she walked in 3 of those hours only
+    assert act.evidence["value"] == pytest.approx(60.0) and act.evidence["active_hours"] == 3
+    assert not act.raise_
+
+
+def test_the_activity_floor_stops_tiny_baselines_from_firing() -> None:
+    farm = Farm(**FIRST_RULES)
     farm.run_hours(8 * 24, walk_min=0.5)  # 1 min walking per 2 h
     new = [a for a in farm.run_hours(6, walk_min=2.0) if a.rule == Rule.ACTIVITY_RISE]
     assert new == []  # 4x, but 4 min against a floor of 5 min per window
@@ -282,6 +375,11 @@ def test_settings_refuse_thresholds_without_hysteresis() -> None:
         AlertsSettings(rumination_drop=0.2, rumination_clear=0.25)
     with pytest.raises(ValueError, match="min_baseline_days"):
         AlertsSettings(baseline_days=5, min_baseline_days=6)
+    with pytest.raises(ValueError, match="hysteresis"):
+        AlertsSettings(rumination_sustained_drop=0.1, rumination_sustained_clear=0.1)
+    with pytest.raises(ValueError, match="activity_min_active_h"):
+        AlertsSettings(activity_window_h=2)  # 7 active hours cannot fit in 2
+    AlertsSettings(rumination_sustained_drop=0.0, rumination_sustained_clear=0.5)  # off
 
 
 def test_the_caution_is_the_command_lines() -> None:
