@@ -8,8 +8,9 @@ import numpy as np
 import pytest
 
 from gateway.types import BEHAVIOURS
+from simulator.health import CLINICAL_DROP
 from simulator.herd import Herd
-from simulator.schedule import DAY_S
+from simulator.schedule import DAY_S, SCENARIOS
 
 R, W = BEHAVIOURS.index("ruminating"), BEHAVIOURS.index("walking")
 
@@ -49,6 +50,26 @@ def test_illness_takes_20_to_40_percent_of_rumination() -> None:
     assert np.mean(np.abs(np.array(drops) - wanted)) < 0.1
 
 
+def test_illness_is_clinical_once_the_cut_reaches_20_percent() -> None:
+    herd = _herd(10, illness_share=0.25)
+    after = []
+    for ev in [e for e in herd.events if e.kind == "illness"]:
+        i, tc = ev.animal_index, ev.clinical_onset
+        assert ev.onset < tc <= ev.onset + ev.params["ramp_days"] * DAY_S + 1e-3
+        cut = ev.rumination_cut(np.array([tc - 600.0, tc + 600.0]), SCENARIOS["housed"])
+        # the bottom of FIELD.md's 20-40 % for illness in general [M]
+        assert cut[0] < CLINICAL_DROP <= cut[1] + 1e-9
+        onset_day = int(np.floor((ev.onset - herd.start) / DAY_S))
+        base = np.mean([_rum(herd, i, herd.start + d * DAY_S, herd.start + (d + 1) * DAY_S)
+                        for d in range(onset_day)])  # fmt: skip
+        after.append(1.0 - _rum(herd, i, tc, tc + DAY_S) / base)
+    # in the 24 h after it her rumination is at least that far down, on average
+    assert np.mean(after) >= CLINICAL_DROP
+    # estrus and calving are there at once: their clinical onset is the onset
+    other = Herd(20, seed=3, days=7, estrus_share=0.1, calving_share=0.1).events
+    assert other and all(e.clinical_onset == e.onset for e in other)
+
+
 def test_estrus_activity_and_rumination() -> None:
     herd = _herd(6, estrus_share=0.5)
     est = [e for e in herd.events if e.kind == "estrus"]
@@ -70,6 +91,12 @@ def test_estrus_activity_and_rumination() -> None:
                           for k in others])  # fmt: skip
         folds_num += w_in
         folds_den += w_base
+        before = [k for k in others if k < 0]
+        if before:  # her usual for these hours is what the days before showed
+            w_usual = np.mean([herd.schedule.minutes(ev.onset + k * DAY_S, ev.end + k * DAY_S)
+                               [i, W] for k in before])  # fmt: skip
+            # Lovendahl & Chagunda 2010 (FIELD.md): ~2.8-fold
+            assert 2.5 <= w_in / w_usual <= 3.1, ev
         r_day = _rum(herd, i, d0, d0 + DAY_S)
         r_base = np.mean([_rum(herd, i, d0 + k * DAY_S, d0 + (k + 1) * DAY_S) for k in others])
         rum_drops.append(1.0 - r_day / r_base)

@@ -63,6 +63,18 @@ def test_rumination_time_housed(housed: Herd) -> None:
     assert 0.5 * 71 <= per_animal.std() <= 1.5 * 71
 
 
+@pytest.mark.parametrize("scenario", ["housed", "pasture"])
+def test_rumination_is_steady_from_day_to_day(scenario: str, housed: Herd, pasture: Herd) -> None:
+    d = _daily(housed if scenario == "housed" else pasture)[:, :, R]
+    within_sd = d.std(axis=1, ddof=1)
+    # a cow's daily rumination varies by about 5-10 % from day to day (from memory; FIELD.md
+    # gives only the spread between cows)
+    assert 0.05 <= np.mean(within_sd / d.mean(axis=1)) <= 0.10
+    # and far less than cows differ from each other: 441 +/- 71 min/d between cows (Braun
+    # et al. 2015, BMC Vet Res, FIELD.md)
+    assert within_sd.mean() < 0.75 * d.mean(axis=1).std()
+
+
 def test_rumination_mostly_at_night_housed(housed: Herd) -> None:
     sch = housed.schedule
     night = day = 0.0
