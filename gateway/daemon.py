@@ -121,6 +121,10 @@ class Gateway:
         self._next_commit = 0.0
         self._store_log = RateLimitedLog(log, 60.0)
         self._cap_alerted = False  # the collar cap is raised as a gateway alert once per run
+        # Events the store could not take (disk full) go here too, e.g. to MQTT (serve() wires
+        # Outputs.publish_live); the store keeps them and writes them once it can.
+        self.on_store_failed: Callable[[list[Any]], Any] | None = None
+        self._store_failing = False
         if store is not None:
             self._attach_store(store, assignments)
         # Budgets, alerts and collar health (gateway/analytics.py) follow the same store.
@@ -336,6 +340,15 @@ class Gateway:
             self.store.write_events(events, states)
         except StoreError as exc:  # the store keeps the batch and retries with the next one
             self._store_log.warning("store", "store write failed, retrying with the next: %s", exc)
+            if self.on_store_failed is not None:
+                if not self._store_failing:  # the operator must know, and the store cannot say it
+                    events = [*events, GatewayAlert("store_failing", str(exc), time.time())]
+                self.on_store_failed(events)
+            self._store_failing = True
+        else:
+            if self._store_failing:
+                log.warning("store writes again (%s)", self.store.path)
+            self._store_failing = False
 
     # ------------------------------------------------------------------ the loop
 

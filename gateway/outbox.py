@@ -36,12 +36,14 @@ Run the forwarders alone on a store file (e.g. to drain a backlog):
 from __future__ import annotations
 
 import argparse
+import contextlib
 import dataclasses
 import email.utils
 import enum
 import json
 import logging
 import math
+import queue
 import random
 import signal
 import sqlite3
@@ -88,6 +90,8 @@ _CAP_LOW_WATER = 0.9
 _REJECTED_KEEP = 10_000
 # Gateway figures go to the sinks this often: dashboards plot them per minute.
 _STATS_EVERY_S = 60.0
+# Batches of facts waiting for the sinks that need no store while the store is full.
+_LIVE_MAX = 1000
 # Delivery latency buckets: live delivery takes well under a second, outages hours.
 _LATENCY_BUCKETS = (0.05, 0.1, 0.25, 0.5, 1, 2.5, 5, 10, 30, 60, 300, 900, 3600, 14400, 86400)
 
@@ -912,6 +916,56 @@ class Outputs:
         self._collector = _Collector(self)
         if registry is not None:
             registry.register(self._collector)
+        self._live: queue.Queue[list[Record] | None] = queue.Queue(maxsize=_LIVE_MAX)
+        self._live_thread: threading.Thread | None = None
+        self.live_sent = self.live_lost = 0
+
+    def publish_live(self, events: Sequence[Any]) -> int:
+        """Hand facts the store could not take (disk full) straight to the sinks that need no
+        store (``sink.live``: MQTT), best effort, from a thread of their own; how many taken.
+
+        The store keeps such facts and queues them once it can write again, so these sinks
+        may get them twice (MQTT delivery is at least once anyway); the others get them then.
+        """
+        sinks = [fw.sink for fw in self.forwarders if getattr(fw.sink, "live", False)]
+        if not sinks or not events:
+            return 0
+        now = self.outbox.clock()
+        batch = []
+        for e in events:
+            try:
+                fact = json.loads(json.dumps(fact_of(e), default=_json_default))
+            except (TypeError, ValueError):
+                continue  # not a fact; the store's own path reports those
+            batch.append(Record(0, fact["kind"], now, fact))
+        if self._live_thread is None:
+            self._live_thread = threading.Thread(
+                target=self._live_loop, args=(sinks,), name="outputs-live", daemon=True
+            )
+            self._live_thread.start()
+        try:
+            self._live.put_nowait(batch)
+        except queue.Full:
+            self.live_lost += len(batch)
+            return 0
+        return len(batch)
+
+    def _live_loop(self, sinks: list[Sink]) -> None:
+        failing = False
+        while (batch := self._live.get()) is not None:
+            for sink in sinks:
+                try:
+                    sink.write(batch)
+                except SinkError as exc:  # best effort: the outbox delivers them later
+                    self.live_lost += len(batch)
+                    if not failing:
+                        log.warning(
+                            "%s: facts the store could not take not sent: %s", sink.name, exc
+                        )
+                    failing = True
+                else:
+                    self.live_sent += len(batch)
+                    failing = False
 
     def stats(self) -> GatewayStats:
         """Pipeline totals from the registry (gateway/telemetry.py names) and the backlog."""
@@ -984,6 +1038,10 @@ class Outputs:
         self._stats_stop.set()
         if self._stats_thread is not None:
             self._stats_thread.join(timeout_s)
+        if self._live_thread is not None:
+            with contextlib.suppress(queue.Full):
+                self._live.put(None, timeout=timeout_s)
+            self._live_thread.join(timeout_s)
         for fw in self.forwarders:
             fw.request_stop()
         for fw in self.forwarders:

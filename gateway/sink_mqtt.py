@@ -166,6 +166,8 @@ register_topic("gateway_alert", _alert)
 class MqttSink:
     """Publishes facts to the broker; keeps the retained gateway status and its last will."""
 
+    live = True  # needs no store: takes facts the store could not (Outputs.publish_live)
+
     def __init__(
         self,
         *,

@@ -8,9 +8,14 @@ The figures each test prints are the ones docs/reliability.md reports.
 
 from __future__ import annotations
 
+import errno
+import json
 import os
+import shutil
 import signal
 import sqlite3
+import subprocess
+import sys
 import threading
 import time
 from pathlib import Path
@@ -397,3 +402,156 @@ def test_broker_killed_mid_stream_and_while_the_gateway_is_away(
         return sorted((d.animal, d.t, d.behaviour) for r in rs for d in r.decisions)
 
     assert decided(results) == decided(ref_results) and len(decided(results)) > 1000
+
+
+# ------------------------------------------------------------------------------ disk full
+
+
+def _small_filesystem_prefix(mount_point: Path, size_mb: int) -> list[str]:
+    """argv that runs a command in a mount namespace of its own, ``mount_point`` being a
+    tmpfs of ``size_mb`` there (unshare(1); a user namespace when we are not root)."""
+    unshare = shutil.which("unshare")
+    assert unshare, "unshare (util-linux) is needed to give the store a small filesystem"
+    user = [] if os.geteuid() == 0 else ["--map-root-user"]
+    probe = [unshare, "--mount", *user, "sh", "-c", f"mount -t tmpfs -o size=1m t {mount_point}"]
+    done = subprocess.run(probe, capture_output=True, text=True)
+    assert done.returncode == 0, f"cannot mount a tmpfs in a mount namespace: {done.stderr}"
+    script = f'mount -t tmpfs -o size={size_mb}m boutline-test "$0" && exec "$@"'
+    return [unshare, "--mount", *user, "sh", "-c", script, str(mount_point)]
+
+
+def _fill(directory: Path) -> int:
+    """Write a file until the filesystem is full; its size."""
+    n = 0
+    with (directory / "filler").open("wb") as f:
+        chunk = b"\0" * 65536
+        try:
+            while True:
+                f.write(chunk)
+                f.flush()
+                n += len(chunk)
+        except OSError as exc:
+            assert exc.errno == errno.ENOSPC, exc
+    return n
+
+
+@pytest.mark.slow
+def test_store_disk_full_keeps_classifying_and_publishing_then_catches_up(
+    tmp_path: Path, mosquitto
+) -> None:
+    from mqttpeers import Subscriber
+
+    site, herd = "fault-disk", 2
+    data = tmp_path / "data"
+    data.mkdir()
+    cfg = _base(site, mosquitto, tmp_path, herd, outputs={"mqtt": True},
+                store={"data_dir": str(data)})  # fmt: skip
+    gw = Daemon(tmp_path, cfg)
+    gw.argv_prefix = _small_filesystem_prefix(data, 24)
+    bouts_topic = Subscriber(mosquitto.host, mosquitto.port, f"barn/{site}/events/bouts")
+    alerts = Subscriber(mosquitto.host, mosquitto.port, f"barn/{site}/alerts")
+    start = float(int(time.time())) - 7 * 3600
+    part_s = 2 * 3600.0
+
+    def feed(k: int) -> None:
+        finish(publish_herd(mosquitto.host, mosquitto.port, site, herd=herd, duration_s=part_s,
+                            start=start + k * part_s, seed=71))  # fmt: skip
+        gw.wait_quiet("boutline_frames_in_total")
+
+    gw.start()
+    seen = Path(f"/proc/{gw.pid}/root") / str(data).lstrip("/")  # the store's tmpfs, from here
+
+    def stored() -> set:
+        """Bout keys in the store, read inside the gateway's mount namespace (SQLite resolves
+        /proc/<pid>/root to this namespace's root, so it cannot open the file through it)."""
+        code = (
+            "import json, sys; from gateway.store import Store\n"
+            f"with Store.open({str(data)!r}, readonly=True) as s:\n"
+            "    json.dump([(b.animal, b.behaviour, round(b.start * 1000))"
+            " for b in s.bouts() + s.no_data()], sys.stdout)"
+        )
+        user = [] if os.geteuid() == 0 else ["--user", "--preserve-credentials"]
+        argv = ["nsenter", "--target", str(gw.pid), "--mount", *user, sys.executable, "-c", code]
+        done = subprocess.run(argv, capture_output=True, text=True, timeout=60)
+        assert done.returncode == 0, done.stderr[-2000:]
+        return {tuple(k) for k in json.loads(done.stdout)}
+
+    try:
+        feed(0)
+        before = stored()
+        filler = _fill(seen)
+        windows = gw.value("boutline_windows_classified_total")
+        feed(1)  # two hours of the herd while nothing can be written
+        assert gw.value("boutline_windows_classified_total") > windows + herd * 1000
+        during = stored()
+        live = {(p["animal"], p["behaviour"], round(p["start"] * 1000))
+                for p in (json.loads(m[1]) for m in bouts_topic.collect(quiet_s=2.0))}  # fmt: skip
+        errors = [ln for ln in gw.log.splitlines() if "is full" in ln]
+        (seen / "filler").unlink()  # space comes back
+        feed(2)
+        assert wait_for(lambda: gw.value("boutline_sink_backlog", sink="mqtt") == 0, 30)
+        after = stored()
+        assert gw.alive()
+    finally:
+        rc = gw.stop()
+        bouts_topic.close()
+    gateway_alerts = [json.loads(p) for _, p, _ in alerts.collect(quiet_s=0.5)]
+    alerts.close()
+    new_while_full = live - before
+    print(f"store disk full: {filler / 1e6:.1f} MB filler, {len(new_while_full)} bouts on MQTT"
+          f" while full, {len(after)} stored in the end")  # fmt: skip
+    assert rc == 0
+    assert during == before  # nothing could be stored...
+    assert len(new_while_full) >= herd * 3  # ...yet the displays heard of the bouts,
+    assert errors and "free disk space" in errors[0]  # the log said why and what to do,
+    assert [a["cause"] for a in gateway_alerts] == ["store_failing"]  # the alerts topic too,
+    assert before | new_while_full <= after  # and every one of them was stored afterwards
+    assert len(after) > len(before | new_while_full)  # and storing went on
+
+
+def test_store_full_hands_events_to_the_live_path_once_each(tmp_path: Path) -> None:
+    """Without servers: a capped store (SQLite max_page_count) as the full disk."""
+    from gateway.daemon import Gateway
+    from gateway.errors import StoreFullError
+    from gateway.outbox import GatewayAlert
+    from gateway.types import BoutClosed, StateChanged
+    from gateway.wire import collar_topic, encode_binary
+    from simulator.herd import Herd
+
+    settings = Settings.model_validate({"model": {"watch": False}})
+    frames = list(Herd(1, seed=81, frame_s=10.0, days=6 / 24.0, loss=0.0, silence_per_day=0.0))
+    live: list = []
+    with Store.open(tmp_path) as store:
+        gw = Gateway(settings, store=store, speed=None)
+        gw.on_store_failed = live.extend
+
+        def feed(part: list) -> None:
+            for k in range(0, len(part), 30):
+                chunk = part[k : k + 30]
+                gw.handle((collar_topic("barn", "home-farm", f.collar_id), encode_binary(f),
+                           f.t_end) for f in chunk)  # fmt: skip
+                gw.tick(now=chunk[-1].t_end)
+
+        third = len(frames) // 3
+        feed(frames[:third])
+        before = store.bouts()
+        with sqlite3.connect(f"file:{store.path}?mode=ro", uri=True) as c:
+            pages, size = (
+                c.execute(f"PRAGMA {k}").fetchone()[0] for k in ("page_count", "page_size")
+            )
+        store.set_max_mb(pages * size / 1e6)  # no page more
+        with pytest.raises(StoreFullError):
+            store.write_events([BoutClosed(f"x{i}", "resting", 1.0, 2.0, 0.9) for i in range(5000)])
+        feed(frames[third : 2 * third])
+        assert store.bouts() == before and store.pending > 0
+        store.set_max_mb(None)  # space again
+        feed(frames[2 * third :])
+        gw.close(flush=False)
+        after = store.bouts()
+    alerts = [e for e in live if isinstance(e, GatewayAlert)]
+    events = [e for e in live if isinstance(e, BoutClosed | StateChanged)]
+    assert [a.cause for a in alerts] == ["store_failing"] and "full" in alerts[0].message
+    bouts = [e for e in events if isinstance(e, BoutClosed) and not e.animal.startswith("x")]
+    assert len(bouts) >= 2 and len(set(map(repr, events))) == len(events)  # each once
+    stored = {(b.animal, b.start) for b in after}
+    assert {(b.animal, b.start) for b in bouts if b.behaviour != "no_data"} <= stored

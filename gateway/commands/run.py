@@ -77,6 +77,7 @@ def serve(settings: Any, stop: threading.Event, *, install_sighup: bool = True) 
         tel = gateway.telemetry
         outputs = Outputs.from_settings(settings, store.path, registry=tel.registry)
         store.add_listener(outputs.listener)
+        gateway.on_store_failed = outputs.publish_live  # disk full: MQTT still hears of it
         analytics.add_fact_listener(outputs.listener)
         for problem in outputs.start():
             log.warning("output not working yet (retrying in the background): %s", problem)
