@@ -88,6 +88,15 @@ class PublishSpec:
     inflight: int = 1000
 
 
+def _alive(client: Any, timeout_s: float = 0.0) -> None:
+    """One turn of a publisher's network loop; raise if the broker has dropped us."""
+    import paho.mqtt.client as mqtt
+
+    rc = client.loop(timeout_s)
+    if rc not in (mqtt.MQTT_ERR_SUCCESS, mqtt.MQTT_ERR_AGAIN):
+        raise BoutlineError(f"a publisher lost the benchmark broker ({mqtt.error_string(rc)})")
+
+
 def _publish(spec: PublishSpec, conn: Any) -> dict[str, Any]:
     ps = PayloadSet.open(Path(spec.payload_dir))
     idx = ps.index()
@@ -116,9 +125,13 @@ def _publish(spec: PublishSpec, conn: Any) -> dict[str, Any]:
         if time.monotonic() > deadline:
             raise BoutlineError("could not connect to the benchmark broker")
     conn.send(("ready", len(sel)))
+    # Keep the connection alive (PINGREQ) while the consumer drains a backlog, which can
+    # take minutes: a client that stops calling loop() is dropped by the broker.
+    while not conn.poll(0.05):
+        _alive(client)
     start_wall = float(conn.recv())
     while (wait := start_wall - time.time()) > 0:
-        client.loop(min(wait, 0.05))
+        _alive(client, min(wait, 0.05))
     t_first = time.time()
     n = 0
     late = 0.0
@@ -126,10 +139,10 @@ def _publish(spec: PublishSpec, conn: Any) -> dict[str, Any]:
         if spec.paced:
             due = start_wall + float(sent[i]) - spec.from_s
             while (wait := due - time.time()) > 0:
-                client.loop(min(wait, 0.02))
+                _alive(client, min(wait, 0.02))
             late = max(late, -wait)
         while n - acked[0] >= spec.inflight:  # QoS 1: never more than `inflight` unacked
-            client.loop(0.01)
+            _alive(client, 0.01)
         client.publish(topics[collar[i]], data[off[i] : off[i] + ln[i]], 1)
         n += 1
         if n & 63 == 0:
@@ -137,7 +150,7 @@ def _publish(spec: PublishSpec, conn: Any) -> dict[str, Any]:
     t_published = time.time()
     deadline = time.monotonic() + 120.0
     while acked[0] < n and time.monotonic() < deadline:
-        client.loop(0.02)
+        _alive(client, 0.02)
     t_acked = time.time()
     client.disconnect()
     with suppress(Exception):

@@ -137,8 +137,12 @@ def bench(
     per_repeat = len(opts.phases) + (1 if "bare" in opts.phases else 0)
     total = len(opts.collars) * (1 + opts.repeats * per_repeat)
     with step_progress("bench", total) as advance:
-        report = run_bench(opts, progress=advance)
+        # what is measured so far is saved after each herd size: a long run may be cut short
+        report = run_bench(opts, progress=advance, on_row=lambda partial: _write(out, partial))
     text = format_table(report["rows"], report["targets"])
     typer.echo(text)
+    for row in report["rows"]:
+        for err in row["errors"]:
+            typer.echo(f"Warning: {row['collars']} collars: {err}", err=True)
     _write(out, report)
     typer.echo(f"\nreport: {out} (medians of {opts.repeats} run(s) per herd size)")
