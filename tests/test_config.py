@@ -148,3 +148,8 @@ def test_config_check_cli_masks_secrets(tmp_path: Path) -> None:
     assert r.returncode == 0, r.stderr
     assert "pw-do-not-show" not in r.stdout + r.stderr
     assert 'password = "****"' in r.stdout
+
+
+def test_readme_shows_the_example_config() -> None:
+    readme = (ROOT / "README.md").read_text()
+    assert "```toml\n" + example_toml().rstrip("\n") + "\n```" in readme
