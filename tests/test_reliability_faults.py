@@ -192,7 +192,7 @@ def test_gateway_killed_mid_stream_loses_no_committed_event_and_doubles_nothing(
     # that neither gateway run classified
     expected = _windows_offline(cfg, [(s1, history_s), (s1 + history_s, live_s)], herd_kw)
     lost = expected - windows_before - windows_after
-    print(f"gateway SIGKILL: {lost:.0f} of {expected:.0f} windows not classified, {herd} animals")
+    print(f"\ngateway SIGKILL: {lost:.0f} of {expected:.0f} windows not classified, {herd} animals")
     # the ring buffer (under one window of samples per animal) is what dies with the process;
     # windows overlap (10 s every 5 s), so its samples belong to at most window/hop windows
     assert 0 <= lost <= herd * WINDOW_S / HOP_S
@@ -253,7 +253,7 @@ def test_database_down_for_a_simulated_day(tmp_path: Path, mosquitto, influxdb1_
     assert rc == 0
     final = _store_bouts(gw.data_dir)
     keys, points = _influx_bouts(influxdb1_private.url, db)
-    print(f"database down a simulated day: {backlog:.0f} facts waited, {len(final)} bouts"
+    print(f"\ndatabase down a simulated day: {backlog:.0f} facts waited, {len(final)} bouts"
           f" ({stored_during} stored during the outage) in {day_s:.0f} s, delivered in"
           f" {drain_s:.1f} s")  # fmt: skip
     assert stored_during >= herd * 5 and backlog >= stored_during
@@ -383,7 +383,7 @@ def test_broker_killed_mid_stream_and_while_the_gateway_is_away(
     assert not errors, errors
     gw.close(flush=True)
     rejects = gw.telemetry.rejects_by_reason()
-    print(f"broker SIGKILL: {len(messages)} frames, {queued} queued while away,"
+    print(f"\nbroker SIGKILL: {len(messages)} frames, {queued} queued while away,"
           f" rejects {rejects}, reconnects {gw.telemetry.value('boutline_broker_reconnects_total')}")  # fmt: skip
     # every frame taken once (QoS 1 may deliver twice: the duplicate is dropped and counted)
     assert gw.telemetry.value("boutline_frames_in_total") == len(messages)
@@ -498,7 +498,7 @@ def test_store_disk_full_keeps_classifying_and_publishing_then_catches_up(
     gateway_alerts = [json.loads(p) for _, p, _ in alerts.collect(quiet_s=0.5)]
     alerts.close()
     new_while_full = live - before
-    print(f"store disk full: {filler / 1e6:.1f} MB filler, {len(new_while_full)} bouts on MQTT"
+    print(f"\nstore disk full: {filler / 1e6:.1f} MB filler, {len(new_while_full)} bouts on MQTT"
           f" while full, {len(after)} stored in the end")  # fmt: skip
     assert rc == 0
     assert during == before  # nothing could be stored...

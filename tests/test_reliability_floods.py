@@ -135,7 +135,7 @@ def test_ten_thousand_invented_collars(tmp_path: Path, mosquitto) -> None:
         pub.loop_stop()
         alerts.close()
         rc = gw.stop()
-    print(f"id flood: RSS {before:.1f} -> {after:.1f} MB (peak {peak:.1f}), overflow {overflow}")
+    print(f"\nid flood: RSS {before:.1f} -> {after:.1f} MB (peak {peak:.1f}), overflow {overflow}")
     assert rc == 0
     assert tracked == CAP
     assert overflow == INVENTED - (CAP - 4) and rejects == {Reason.COLLAR_CAP: overflow}
@@ -203,6 +203,9 @@ def test_a_collar_at_a_hundred_times_its_rate_is_limited_and_starves_no_one(
     limited = rejects.pop(Reason.RATE_LIMITED, 0.0)
     accepted_flood = sent_flood - limited
     # a token bucket: a minute of frames at the limit as burst, then the limit (docs/gateway.md)
+    print(
+        f"\nrate flood: {sent_flood} sent, {accepted_flood:.0f} taken, {limited:.0f} rate_limited"
+    )
     assert rejects == {}
     assert 60 * rate <= accepted_flood <= 60 * rate + rate * (seconds + 2)
     assert gw.telemetry.value("boutline_frames_in_total") == accepted_flood + 4 * seconds

@@ -118,7 +118,7 @@ def test_hundred_thousand_malformed_payloads_change_nothing_but_the_reject_count
     report["clean_rss_mb"] = clean["rss_mb"]
     report["publish_s"] = hostile["manifest"]["publish_s"]
     report["mb"] = hostile["manifest"]["bytes"] / 1e6
-    print("hostile run:", json.dumps(report))
+    print("\nhostile run:", json.dumps(report), json.dumps(hostile["manifest"]["reasons"]))
 
     # the daemon never stopped, and stopped cleanly when told
     assert hostile["alive"] and hostile["healthz"]["ready"]
