@@ -66,6 +66,10 @@ def validate_filter(topic_filter: str) -> str:
     return topic_filter
 
 
+# One more byte than the largest payload limit the settings allow (limits.max_payload_bytes).
+_KEEP_BYTES = 1_048_576 + 1
+
+
 def secure_client(
     client: Any,
     *,
@@ -107,12 +111,17 @@ class Ingest:
         *,
         topic_filter: str,
         queue_max: int = 200_000,
+        queue_max_bytes: int = 128 * 2**20,
         telemetry: Telemetry | None = None,
         client_id: str | None = None,
     ) -> None:
         self.settings = settings
         self.topic_filter = validate_filter(topic_filter)
         self.queue: queue.Queue[Message] = queue.Queue(maxsize=queue_max)
+        # The queue is bounded in bytes too: a flood of large payloads must not grow memory.
+        self.queue_max_bytes = queue_max_bytes
+        self._queued_bytes = 0
+        self._bytes_lock = threading.Lock()
         self.telemetry = telemetry or Telemetry()
         self.client_id = client_id or settings.client_id
         self.connected = threading.Event()
@@ -129,10 +138,21 @@ class Ingest:
 
     def on_message(self, client: Any, userdata: Any, message: Any) -> None:
         """paho callback: enqueue and return; the only work done on the network thread."""
-        item = (message.topic, message.payload, time.time())
+        payload = message.payload
+        if len(payload) > _KEEP_BYTES:
+            # Longer than any allowed payload: keep just enough for the decoder to say oversize.
+            payload = payload[:_KEEP_BYTES]
+        n = len(payload)
+        with self._bytes_lock:
+            if self._queued_bytes + n > self.queue_max_bytes:
+                self.telemetry.queue_dropped.inc()
+                return
+            self._queued_bytes += n
         try:
-            self.queue.put(item, timeout=self.put_timeout_s)
+            self.queue.put((message.topic, payload, time.time()), timeout=self.put_timeout_s)
         except queue.Full:
+            with self._bytes_lock:
+                self._queued_bytes -= n
             self.telemetry.queue_dropped.inc()
 
     def _on_connect(
@@ -299,6 +319,10 @@ class Ingest:
                 out.append(q.get_nowait())
         except queue.Empty:
             pass
+        if out:
+            taken = sum(len(m[1]) for m in out)
+            with self._bytes_lock:
+                self._queued_bytes -= taken
         self.telemetry.queue_depth.set(q.qsize())
         return out
 

@@ -72,6 +72,30 @@ def test_full_queue_drops_and_counts() -> None:
     assert tel.value("boutline_queue_dropped_total") == 2.0
 
 
+def test_queue_is_bounded_in_bytes_and_huge_payloads_are_cut_to_an_oversize_stub() -> None:
+    from gateway.wire import Reason, decode
+
+    tel = Telemetry()
+    ing = Ingest(
+        MqttSettings(),
+        topic_filter="barn/+/collars/+/accel",
+        queue_max_bytes=3 * 2**20,
+        telemetry=tel,
+    )
+    huge = mqtt.MQTTMessage(topic=b"barn/x/collars/C1/accel")
+    huge.payload = b"{" + b" " * (8 * 2**20)  # 8 MiB: more than any allowed payload
+    for _ in range(5):
+        ing.on_message(None, None, huge)
+    got = ing.drain(timeout_s=0)
+    # Each kept copy is cut to the largest allowed size + 1; only two fit in 3 MiB.
+    assert [len(m[1]) for m in got] == [2**20 + 1, 2**20 + 1]
+    assert tel.value("boutline_queue_dropped_total") == 3.0
+    assert decode(got[0][1], "C1").reason == Reason.OVERSIZE
+    # Draining gives the budget back: the next message fits again.
+    ing.on_message(None, None, huge)
+    assert len(ing.drain(timeout_s=0)) == 1
+
+
 @pytest.mark.parametrize("bad", ["", "barn//x", "barn/#/x", "barn/x y", "barn/+x/a", "a" * 70000])
 def test_malformed_topic_filters_are_refused_at_start(bad: str) -> None:
     with pytest.raises(ConfigError, match="topic filter"):
