@@ -110,7 +110,9 @@ class Ingest:
         settings: MqttSettings,
         *,
         topic_filter: str,
-        queue_max: int = 200_000,
+        # two seconds of a 10,000-collar herd: a longer backlog waits at the broker (QoS 1,
+        # backpressure), not in our memory (~550 bytes a JSON frame; docs/performance.md)
+        queue_max: int = 20_000,
         queue_max_bytes: int = 128 * 2**20,
         telemetry: Telemetry | None = None,
         client_id: str | None = None,

@@ -130,7 +130,7 @@ class Windows:
         hop_len: int,
         max_missing: float = 0.2,
         reorder_s: float = 5.0,
-        buffer_s: float = 60.0,
+        buffer_s: float = 30.0,
         clock_future_s: float = 300.0,
         clock_past_s: float = 86400.0,
         clock_rule: str = "substitute",
