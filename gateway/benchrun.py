@@ -362,6 +362,7 @@ class GatewaySpec(ConsumeSpec):
     settle_s: float = 2.0  # latency counts windows that became ready this long after caught up
     tick_s: float | None = None  # None: the daemon's default (experiments only)
     profile: str = ""  # py-spy raw profile of this process to this file ("" : none)
+    cpu: str = "auto"  # [process] cpu of the gateway under test
     commit_interval_s: float | None = None  # None: the store setting's default
 
 
@@ -386,6 +387,7 @@ def bench_settings(spec: GatewaySpec) -> Any:
             "influx": {"enabled": False},
             "outputs": {"mqtt": False},
             "limits": limits,
+            "process": {"cpu": spec.cpu},
         }
     )  # fmt: skip
 
@@ -458,12 +460,14 @@ class _Probe:
 
 def _gateway(spec: GatewaySpec, conn: Any) -> dict[str, Any]:
     """The real Gateway and Ingest from gateway.daemon, with the SQLite store."""
+    from .affinity import pin_threads
     from .daemon import Gateway
     from .ingest import Ingest
     from .store import Store
     from .telemetry import Telemetry
 
     settings = bench_settings(spec)
+    pin_threads(settings.process.cpu)  # as `boutline run` does first, for every thread
     store = Store.open(settings.data_dir, checkpoint_pages=settings.store.checkpoint_pages)
     try:
         gw = Gateway(settings, store=store, speed=None if spec.replay else 1.0)

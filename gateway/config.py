@@ -43,6 +43,7 @@ __all__ = [
     "ModelSettings",
     "MqttSettings",
     "OutputsSettings",
+    "ProcessSettings",
     "Settings",
     "SiteSettings",
     "SmoothingSettings",
@@ -333,6 +334,16 @@ class LimitsSettings(_Section):
     log_every_s: float = Field(60.0, ge=0, le=3600, description="rate limit of reject logs")
 
 
+class ProcessSettings(_Section):
+    """How the daemon's process runs (gateway/affinity.py, docs/performance.md)."""
+
+    cpu: str = Field(
+        "auto",
+        pattern=r"^(auto|none|[0-9]{1,4})$",
+        description="keep the pipeline's threads on one CPU: auto, none or a CPU number",
+    )
+
+
 class Settings(BaseModel):
     """Every section; unknown sections and keys are errors (typos must not pass silently)."""
 
@@ -351,6 +362,7 @@ class Settings(BaseModel):
     limits: LimitsSettings = LimitsSettings()
     budgets: BudgetsSettings = BudgetsSettings()
     alerts: AlertsSettings = AlertsSettings()
+    process: ProcessSettings = ProcessSettings()
 
     @property
     def data_dir(self) -> Path:

@@ -56,6 +56,7 @@ def run(
 
 def serve(settings: Any, stop: threading.Event, *, install_sighup: bool = True) -> dict[str, Any]:
     """Store, outputs, HTTP and the pipeline loop until ``stop``; returns the last status."""
+    from ..affinity import pin_threads, restore_threads
     from ..analytics import Analytics
     from ..daemon import Gateway
     from ..http import Health, HttpEndpoint
@@ -71,6 +72,8 @@ def serve(settings: Any, stop: threading.Event, *, install_sighup: bool = True) 
         retention_days=settings.store.retention_days,
     )
     outputs = http = None
+    # Before any thread starts, so that all of them inherit it (gateway/affinity.py)
+    pinned = pin_threads(settings.process.cpu)
     try:
         analytics = Analytics(settings, speed=1.0)
         gateway = Gateway(settings, store=store, analytics=analytics)
@@ -134,3 +137,4 @@ def serve(settings: Any, stop: threading.Event, *, install_sighup: bool = True) 
                 outputs.stop()
         store.close()
         notifier.close()
+        restore_threads(pinned)
