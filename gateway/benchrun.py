@@ -283,8 +283,10 @@ def _session_properties(expiry_s: int = 3600) -> Any:
 
 def _bare(spec: ConsumeSpec, conn: Any) -> dict[str, Any]:
     """paho-mqtt, topic parse and decode of every payload; nothing else. The limit."""
+    from .affinity import pin_threads
     from .wire import Rejection, decode, parse_topic
 
+    pin_threads("auto")  # the same one-CPU treatment as the gateway gets
     prog = _Progress(spec, conn)
     counts = {"frames": 0, "samples": 0, "rejects": 0}
     subscribed = threading.Event()
