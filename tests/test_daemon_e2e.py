@@ -98,7 +98,7 @@ def test_simulated_herd_through_mosquitto_meets_the_acceptance_figures(
         sent = int(re.search(r"sent (\d+) frames", pub.stdout).group(1))  # type: ignore[union-attr]
         assert sent >= 0.95 * ANIMALS * DAY / 10.0, pub.stdout  # ~1 % radio loss simulated
         # the broker has every frame (QoS 1, acknowledged); wait until the gateway took them
-        deadline = time.monotonic() + 120
+        deadline = time.monotonic() + 300  # bounded; generous for loaded shared cores
         while gw.telemetry.value("boutline_messages_in_total") < sent and not errors:
             assert time.monotonic() < deadline, gw.status()
             time.sleep(0.2)
