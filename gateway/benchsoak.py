@@ -357,6 +357,7 @@ def run_soak(opts: SoakOptions, progress: Callable[[str], None] | None = None) -
         say("soak: publishers done; waiting for the gateway and its outputs to catch up")
         sent = sum(r["acked"] for r in results)
         final = _settle(http_port, sent)
+        health = json.loads(_get(f"http://127.0.0.1:{http_port}/healthz")[1] or b"{}")
         gateway.send_signal(signal.SIGTERM)
         gateway.wait(120)
         stored = _stored(root / "data" / "boutline.db")
@@ -382,9 +383,7 @@ def run_soak(opts: SoakOptions, progress: Callable[[str], None] | None = None) -
                 "delivered_mqtt_bouts": len(counter.seen),
                 "mqtt_bout_messages": counter.messages,
             },
-            "sinks": json.loads(_get(f"http://127.0.0.1:{http_port}/healthz")[1] or b"{}").get(
-                "sinks", {}
-            ),
+            "sinks": health.get("sinks", {}),  # read before the gateway stopped
             "rss": _rss_summary(samples),
             "samples": samples,
             "publisher_progress": pub,
