@@ -24,7 +24,11 @@ from pathlib import Path
 
 from .errors import ConfigError
 
-__all__ = ["choose_cpu", "current_cpu", "pin_threads", "restore_threads"]
+__all__ = ["allowed_cpus", "choose_cpu", "current_cpu", "pin_threads", "restore_threads"]
+
+# The CPU set the process had before pin_threads narrowed it (the MQTT ingest process, if
+# any, runs on the others: gateway/ingestproc.py). None while nothing is pinned.
+_before_pin: set[int] | None = None
 
 
 def current_cpu() -> int | None:
@@ -34,6 +38,15 @@ def current_cpu() -> int | None:
         return int(stat.rsplit(")", 1)[1].split()[36])
     except (OSError, ValueError, IndexError):
         return None
+
+
+def allowed_cpus() -> set[int]:
+    """The CPUs this process may use, as before any :func:`pin_threads` (empty if unknown)."""
+    if _before_pin is not None:
+        return set(_before_pin)
+    if not hasattr(os, "sched_getaffinity"):
+        return set()
+    return set(os.sched_getaffinity(0))
 
 
 def choose_cpu(setting: str, allowed: set[int]) -> int | None:
@@ -67,11 +80,17 @@ def pin_threads(setting: str) -> set[int] | None:
         os.sched_setaffinity(0, {cpu})  # 0: this thread; threads started later inherit it
     except OSError:
         return None
+    global _before_pin
+    if _before_pin is None:
+        _before_pin = set(before)
     return before
 
 
 def restore_threads(before: set[int] | None) -> None:
     """Give the calling thread back the CPUs it had before :func:`pin_threads`."""
+    global _before_pin
     if before is not None:
         with contextlib.suppress(OSError):
             os.sched_setaffinity(0, before)
+        if _before_pin is not None and set(before) >= _before_pin:
+            _before_pin = None

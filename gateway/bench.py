@@ -60,6 +60,7 @@ __all__ = [
     "median_runs",
     "onnx_alone",
     "pid_cpu_s",
+    "pid_children",
     "pid_peak_rss_mb",
     "profile_summary",
     "run_bench",
@@ -165,6 +166,14 @@ def pid_peak_rss_mb(pid: int) -> float | None:
     except OSError:
         return None
     return None
+
+
+def pid_children(pid: int) -> list[int]:
+    """The direct children of ``pid`` (the gateway's MQTT ingest process: [process] ingest)."""
+    try:
+        return [int(c) for c in Path(f"/proc/{pid}/task/{pid}/children").read_text().split()]
+    except (OSError, ValueError):
+        return []
 
 
 def pid_cpu_s(pid: int | None) -> float:
@@ -836,6 +845,9 @@ def _phase_gateway(
         "cpu_s_per_1000_frames": g["cpu_s_per_1000_frames"],
         "broker_cpu_s_per_1000_frames": 1000.0 * g["broker_cpu_s"] / max(1, g["messages"]),
         "peak_rss_mb": g["peak_rss_mb"],
+        "pipeline_peak_rss_mb": g["pipeline_peak_rss_mb"],
+        "ingest_peak_rss_mb": g["ingest_peak_rss_mb"],
+        "ingest": g["ingest"],
         "windows": g["windows"],
         "events_stored": g["events_stored"],
         "queue_dropped": g["queue_dropped"],
@@ -869,6 +881,8 @@ def _phase_latency(
         "realtime_queue_dropped": r["queue_dropped"],
         "realtime_rejects": r["rejects"],
         "realtime_peak_rss_mb": r["peak_rss_mb"],
+        "realtime_pipeline_peak_rss_mb": r["pipeline_peak_rss_mb"],
+        "realtime_ingest_peak_rss_mb": r["ingest_peak_rss_mb"],
         "realtime_cpu_s_per_1000_frames": r["cpu_s_per_1000_frames"],
         "realtime_publishers_behind_s": r["publishers_behind_s"],
         "realtime_frames_per_s": live_msgs / live_s if live_s > 0 else None,

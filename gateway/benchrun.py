@@ -30,7 +30,7 @@ from typing import Any
 
 import numpy as np
 
-from .bench import SITE, TOPIC_PREFIX, PayloadSet, pid_peak_rss_mb, summarize
+from .bench import SITE, TOPIC_PREFIX, PayloadSet, pid_cpu_s, pid_peak_rss_mb, summarize
 from .errors import BoutlineError
 
 __all__ = [
@@ -465,6 +465,7 @@ def _gateway(spec: GatewaySpec, conn: Any) -> dict[str, Any]:
     from .affinity import pin_threads
     from .daemon import Gateway
     from .ingest import Ingest
+    from .ingestproc import open_ingest
     from .store import Store
     from .telemetry import Telemetry
 
@@ -484,9 +485,16 @@ def _gateway(spec: GatewaySpec, conn: Any) -> dict[str, Any]:
                 first.stop()
         prog = _Progress(spec, conn)
         probe = _Probe(gw, store, prog, spec.latency, spec.settle_s)
-        ingest = Ingest(settings.mqtt, topic_filter=gw.topic_filter, telemetry=tel)
+        ingest = open_ingest(settings, topic_filter=gw.topic_filter, telemetry=tel)
         stop = threading.Event()
         cpu: dict[str, float] = {}
+
+        def ingest_pid() -> int | None:
+            return getattr(ingest, "pid", None)
+
+        def cpu_now() -> float:
+            # all threads of this process, and the ingest process if there is one
+            return time.process_time() + pid_cpu_s(ingest_pid())
 
         def finished() -> bool:
             # everything handled, then a tick (inference, tracker, store) after the last
@@ -502,17 +510,19 @@ def _gateway(spec: GatewaySpec, conn: Any) -> dict[str, Any]:
                 if not spec.backlog:
                     conn.send(("ready", 0))
                     conn.recv()
-                    cpu["0"] = time.process_time()
+                    cpu["0"] = cpu_now()
                     prog.t_go = time.time()
                 prog.watch(finished, caught_up)
-                cpu["1"] = time.process_time()
+                cpu["1"] = cpu_now()
+                pid = ingest_pid()
+                cpu["ingest_rss"] = (pid_peak_rss_mb(pid) or 0.0) if pid else 0.0
             finally:
                 stop.set()
 
         if spec.backlog:
             conn.send(("ready", 0))
             conn.recv()
-            cpu["0"] = time.process_time()
+            cpu["0"] = cpu_now()
             prog.t_go = time.time()
         io0 = _io_write_bytes()
         if spec.profile:
@@ -523,8 +533,15 @@ def _gateway(spec: GatewaySpec, conn: Any) -> dict[str, Any]:
         thread.join(10.0)
         cpu_s = cpu.get("1", time.process_time()) - cpu.get("0", 0.0)
         snap = tel.snapshot()
+        figures = prog.figures(cpu_s)
+        # The gateway's memory is both processes': the sum of their peaks (an upper bound;
+        # shared library pages count twice).
+        figures["pipeline_peak_rss_mb"] = figures["peak_rss_mb"]
+        figures["ingest_peak_rss_mb"] = cpu.get("ingest_rss", 0.0)
+        figures["peak_rss_mb"] = (figures["peak_rss_mb"] or 0.0) + figures["ingest_peak_rss_mb"]
+        figures["ingest"] = "process" if ingest_pid() else "thread"
         return {
-            **prog.figures(cpu_s),
+            **figures,
             **probe.figures(),
             "frames": snap["frames_in"],
             "samples": tel.value("boutline_samples_in_total"),
@@ -642,7 +659,6 @@ def run_phases(
 
     Returns the consumer's figures plus the publishers' and the broker's CPU seconds.
     """
-    from .bench import pid_cpu_s
 
     kids = Children()
     try:

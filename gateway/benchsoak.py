@@ -43,7 +43,7 @@ from typing import Any
 
 import numpy as np
 
-from .bench import pid_cpu_s
+from .bench import pid_children, pid_cpu_s
 from .benchrun import Children, mqtt_client, recv
 from .errors import BoutlineError, ConfigError
 
@@ -287,6 +287,18 @@ def _vm_rss_mb(pid: int) -> float | None:
     return None
 
 
+def _tree_rss_mb(pid: int) -> float | None:
+    """RSS of the gateway and its children, MB (shared library pages count in each)."""
+    own = _vm_rss_mb(pid)
+    if own is None:
+        return None
+    return own + sum(_vm_rss_mb(c) or 0.0 for c in pid_children(pid))
+
+
+def _tree_cpu_s(pid: int) -> float:
+    return pid_cpu_s(pid) + sum(pid_cpu_s(c) for c in pid_children(pid))
+
+
 def _boutline_argv() -> list[str]:
     exe = shutil.which("boutline") or str(Path(sys.executable).with_name("boutline"))
     if os.access(exe, os.X_OK):
@@ -439,8 +451,8 @@ def _drive(
                 {
                     "wall_s": round(now - wall0, 1),
                     "sim_days": round(sim_s / 86400.0, 4),
-                    "rss_mb": _vm_rss_mb(gateway.pid),
-                    "cpu_s": round(pid_cpu_s(gateway.pid), 2),
+                    "rss_mb": _tree_rss_mb(gateway.pid),
+                    "cpu_s": round(_tree_cpu_s(gateway.pid), 2),
                     "frames_in": m.get("boutline_frames_in_total"),
                     "bouts": m.get('boutline_events_total{kind="bout_closed"}'),
                 }

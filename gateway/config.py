@@ -335,12 +335,17 @@ class LimitsSettings(_Section):
 
 
 class ProcessSettings(_Section):
-    """How the daemon's process runs (gateway/affinity.py, docs/performance.md)."""
+    """How the daemon's processes run (gateway/affinity.py, gateway/ingestproc.py)."""
 
     cpu: str = Field(
         "auto",
         pattern=r"^(auto|none|[0-9]{1,4})$",
         description="keep the pipeline's threads on one CPU: auto, none or a CPU number",
+    )
+    ingest: str = Field(
+        "auto",
+        pattern=r"^(auto|process|thread)$",
+        description="MQTT client in a process of its own (auto: when two CPUs or more)",
     )
 
 

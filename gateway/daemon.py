@@ -30,6 +30,7 @@ from .config import Settings
 from .errors import StoreError
 from .infer import Inference
 from .ingest import Ingest, Message, collar_filter
+from .ingestproc import ProcessIngest, open_ingest
 from .model import Model
 from .outbox import GatewayAlert
 from .registry import Registry, load_assignments
@@ -357,16 +358,17 @@ class Gateway:
         self,
         stop: threading.Event,
         *,
-        ingest: Ingest | None = None,
+        ingest: Ingest | ProcessIngest | None = None,
         tick_s: float = 0.1,
         on_tick: Callable[[TickResult], None] | None = None,
-    ) -> Ingest:
+    ) -> Ingest | ProcessIngest:
         """Subscribe and work until ``stop`` is set; raises BrokerAuthError if refused."""
-        ingest = ingest or Ingest(
-            self.settings.mqtt, topic_filter=self.topic_filter, telemetry=self.telemetry
+        ingest = ingest or open_ingest(
+            self.settings, topic_filter=self.topic_filter, telemetry=self.telemetry
         )
         # This thread and the network thread started below share one CPU: their GIL hand-offs
-        # across two CPUs cost half the CPU time per frame (gateway/affinity.py).
+        # across two CPUs cost half the CPU time per frame (gateway/affinity.py). An ingest
+        # process (gateway/ingestproc.py) takes the other CPUs.
         pinned = pin_threads(self.settings.process.cpu)
         ingest.start()
         next_tick = time.monotonic() + tick_s

@@ -25,13 +25,24 @@ import re
 import ssl
 import threading
 import time
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
-from .config import MqttSettings
 from .errors import BrokerAuthError, BrokerError, ConfigError
-from .telemetry import RateLimitedLog, Telemetry
+from .ratelog import RateLimitedLog
 
-__all__ = ["AUTH_FAILURES", "Ingest", "Message", "collar_filter", "validate_filter"]
+if TYPE_CHECKING:  # not imported at run time: the ingest process stays small (ingestchild.py)
+    from .config import MqttSettings
+    from .telemetry import Telemetry
+
+__all__ = [
+    "AUTH_FAILURES",
+    "QUEUE_MAX",
+    "QUEUE_MAX_BYTES",
+    "Ingest",
+    "Message",
+    "collar_filter",
+    "validate_filter",
+]
 
 log = logging.getLogger("boutline.ingest")
 
@@ -46,6 +57,10 @@ AUTH_FAILURES = {
     0x8A: "banned",
     0x8C: "bad authentication method",
 }
+# Two seconds of a 10,000-collar herd: a longer backlog waits at the broker (QoS 1,
+# backpressure), not in our memory (~550 bytes a JSON frame; docs/performance.md).
+QUEUE_MAX = 20_000
+QUEUE_MAX_BYTES = 128 * 2**20
 _PUT_TIMEOUT_S = 1.0  # how long the network thread waits on a full queue before dropping
 _LEVEL = r"[A-Za-z0-9_.-]+"
 _FILTER_RE = re.compile(rf"^({_LEVEL}|\+)(/({_LEVEL}|\+))*(/#)?$|^#$")
@@ -110,10 +125,8 @@ class Ingest:
         settings: MqttSettings,
         *,
         topic_filter: str,
-        # two seconds of a 10,000-collar herd: a longer backlog waits at the broker (QoS 1,
-        # backpressure), not in our memory (~550 bytes a JSON frame; docs/performance.md)
-        queue_max: int = 20_000,
-        queue_max_bytes: int = 128 * 2**20,
+        queue_max: int = QUEUE_MAX,
+        queue_max_bytes: int = QUEUE_MAX_BYTES,
         telemetry: Telemetry | None = None,
         client_id: str | None = None,
     ) -> None:
@@ -124,7 +137,11 @@ class Ingest:
         self.queue_max_bytes = queue_max_bytes
         self._queued_bytes = 0
         self._bytes_lock = threading.Lock()
-        self.telemetry = telemetry or Telemetry()
+        if telemetry is None:
+            from .telemetry import Telemetry
+
+            telemetry = Telemetry()
+        self.telemetry = telemetry
         self.client_id = client_id or settings.client_id
         self.connected = threading.Event()
         self.subscribed = threading.Event()

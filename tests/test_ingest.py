@@ -15,6 +15,7 @@ from paho.mqtt.enums import CallbackAPIVersion
 from gateway.config import MqttSettings
 from gateway.errors import BrokerAuthError, ConfigError
 from gateway.ingest import Ingest, collar_filter, validate_filter
+from gateway.ingestproc import ProcessIngest
 from gateway.servers import start_mosquitto
 from gateway.telemetry import Telemetry
 
@@ -39,6 +40,13 @@ def _publish(srv, items: list[tuple[str, bytes]], qos: int = 1) -> None:
     finally:
         pub.disconnect()
         pub.loop_stop()
+
+
+@pytest.fixture(params=["thread", "process"])
+def ingest_cls(request):
+    """Every broker test runs with the MQTT client in a thread and in a process of its own
+    (``[process] ingest``, gateway/ingestproc.py): the same interface, the same behaviour."""
+    return Ingest if request.param == "thread" else ProcessIngest
 
 
 def _drain_until(ing: Ingest, n: int, timeout_s: float = 10.0) -> list:
@@ -105,11 +113,11 @@ def test_malformed_topic_filters_are_refused_at_start(bad: str) -> None:
 
 @pytest.mark.integration
 @pytest.mark.parametrize("protocol", ["5", "3.1.1"])
-def test_receives_qos1_frames_from_a_real_broker(mosquitto, protocol: str) -> None:
-    ing = Ingest(
+def test_receives_qos1_frames_from_a_real_broker(mosquitto, protocol: str, ingest_cls) -> None:
+    ing = ingest_cls(
         _settings(mosquitto, protocol=protocol),
         topic_filter="barn/test-site/collars/+/accel",
-        client_id=f"recv-{protocol}",
+        client_id=f"recv-{protocol}-{ingest_cls.__name__}",
     )
     ing.start()
     try:
@@ -124,17 +132,21 @@ def test_receives_qos1_frames_from_a_real_broker(mosquitto, protocol: str) -> No
 
 @pytest.mark.integration
 @pytest.mark.parametrize("protocol", ["5", "3.1.1"])
-def test_persistent_session_delivers_frames_queued_while_away(mosquitto, protocol: str) -> None:
+def test_persistent_session_delivers_frames_queued_while_away(
+    mosquitto, protocol: str, ingest_cls
+) -> None:
     settings = _settings(
-        mosquitto, protocol=protocol, client_id=f"persist-{protocol.replace('.', '')}"
+        mosquitto,
+        protocol=protocol,
+        client_id=f"persist-{protocol.replace('.', '')}-{ingest_cls.__name__}",
     )
     topic_filter = "barn/test-site/collars/+/accel"
-    first = Ingest(settings, topic_filter=topic_filter)
+    first = ingest_cls(settings, topic_filter=topic_filter)
     first.start()
     assert first.wait_connected(10)
     first.stop()  # the gateway goes away; its session stays on the broker
     _publish(mosquitto, [(TOPIC.format("C7"), b"away-%d" % i) for i in range(50)])
-    second = Ingest(settings, topic_filter=topic_filter)
+    second = ingest_cls(settings, topic_filter=topic_filter)
     second.start()
     try:
         got = _drain_until(second, 50)
@@ -144,9 +156,9 @@ def test_persistent_session_delivers_frames_queued_while_away(mosquitto, protoco
 
 
 @pytest.mark.integration
-def test_reconnects_after_the_broker_restarts(mosquitto_private) -> None:
+def test_reconnects_after_the_broker_restarts(mosquitto_private, ingest_cls) -> None:
     tel = Telemetry()
-    ing = Ingest(
+    ing = ingest_cls(
         _settings(mosquitto_private, client_id="reconnect"),
         topic_filter="barn/test-site/collars/+/accel",
         telemetry=tel,
@@ -157,7 +169,7 @@ def test_reconnects_after_the_broker_restarts(mosquitto_private) -> None:
         mosquitto_private.restart()
         deadline = time.monotonic() + 15
         while ing.connects < 2 and time.monotonic() < deadline:
-            time.sleep(0.05)
+            ing.drain(100, timeout_s=0.05)  # a process ingest reports its state through drain
         assert ing.connects == 2 and ing.wait_connected(5)
         _publish(mosquitto_private, [(TOPIC.format("C1"), b"after")])
         assert [p for _, p, _ in _drain_until(ing, 1)] == [b"after"]
@@ -183,8 +195,10 @@ def auth_broker(tmp_path: Path):
 
 @pytest.mark.integration
 @pytest.mark.parametrize("protocol", ["5", "3.1.1"])
-def test_refused_credentials_stop_with_a_clear_error(auth_broker, protocol: str) -> None:
-    ing = Ingest(
+def test_refused_credentials_stop_with_a_clear_error(
+    auth_broker, protocol: str, ingest_cls
+) -> None:
+    ing = ingest_cls(
         _settings(auth_broker, protocol=protocol, username="gateway", password="wrong"),
         topic_filter="barn/+/collars/+/accel",
     )
@@ -198,7 +212,7 @@ def test_refused_credentials_stop_with_a_clear_error(auth_broker, protocol: str)
             ing.check()
     finally:
         ing.stop()
-    ok = Ingest(
+    ok = ingest_cls(
         _settings(auth_broker, protocol=protocol, username="gateway", password="right-password"),
         topic_filter="barn/+/collars/+/accel",
     )
@@ -238,10 +252,10 @@ def tls_broker(tmp_path: Path):
 # (client._ssl_wrap_socket does not close it); the resulting ResourceWarning is paho's
 @pytest.mark.filterwarnings("ignore::pytest.PytestUnraisableExceptionWarning")
 def test_tls_with_the_right_ca_connects_and_a_wrong_ca_does_not(
-    tls_broker, caplog: pytest.LogCaptureFixture
+    tls_broker, caplog: pytest.LogCaptureFixture, ingest_cls
 ) -> None:
     work = tls_broker.workdir
-    good = Ingest(
+    good = ingest_cls(
         _settings(tls_broker, tls=True, ca_file=str(work / "ca.crt"), client_id="tls-good"),
         topic_filter="barn/test-site/collars/+/accel",
     )
@@ -250,7 +264,7 @@ def test_tls_with_the_right_ca_connects_and_a_wrong_ca_does_not(
         assert good.wait_connected(10)
     finally:
         good.stop()
-    bad = Ingest(
+    bad = ingest_cls(
         _settings(tls_broker, tls=True, ca_file=str(work / "other-ca.crt"), client_id="tls-bad"),
         topic_filter="barn/test-site/collars/+/accel",
     )
@@ -264,8 +278,8 @@ def test_tls_with_the_right_ca_connects_and_a_wrong_ca_does_not(
         gc.collect()  # collect paho's leaked sockets here, under this test's warning filter
 
 
-def test_unreadable_tls_files_are_a_config_error(tmp_path: Path) -> None:
-    ing = Ingest(
+def test_unreadable_tls_files_are_a_config_error(tmp_path: Path, ingest_cls) -> None:
+    ing = ingest_cls(
         MqttSettings(tls=True, ca_file=str(tmp_path / "missing-ca.crt")),
         topic_filter="barn/+/collars/+/accel",
     )

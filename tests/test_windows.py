@@ -4,6 +4,8 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from gateway.types import Frame
 from gateway.windows import Windows
@@ -154,6 +156,30 @@ def test_duplicates_are_dropped_and_seq_wraps() -> None:
     ref = windows()
     push_all(ref, fs)
     np.testing.assert_allclose(w.collect().batch.x, ref.collect().batch.x)
+
+
+@settings(max_examples=200, deadline=None)
+@given(
+    st.lists(
+        st.tuples(
+            # few distinct values, and ones whose bytes straddle slot boundaries when packed
+            st.sampled_from([0, 1, 255, 256, 0x01000000, 0x00010100, 2**32 - 1, 7, 0x0707]),
+            st.sampled_from([0.0, 0.0004, 0.5, 1.0]),
+        ),
+        max_size=600,
+    )
+)
+def test_duplicate_memory_matches_a_plain_list_of_the_last_frames(items) -> None:
+    """The byte-ring duplicate memory against the obvious model: a frame is a duplicate when
+    one of the last 256 remembered frames has its seq and a collar time within 1 ms."""
+    from gateway.windows import _DUP_MEMORY, _Stream
+
+    stream, model = _Stream("a", 10), []
+    for seq, t in items:
+        want = any(s == seq and abs(u - t) < 1e-3 for s, u in model[-_DUP_MEMORY:])
+        assert Windows._seen(stream, seq, t) == want
+        Windows._remember_seq(stream, seq, t)
+        model.append((seq, t))
 
 
 def test_gap_over_max_missing_is_a_no_data_hop_and_the_fill_is_linear() -> None:

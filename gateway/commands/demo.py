@@ -234,7 +234,7 @@ def run_demo(
     from ..config import Settings
     from ..daemon import Gateway
     from ..errors import ConfigError
-    from ..ingest import Ingest
+    from ..ingestproc import open_ingest
     from ..store import STORE_FILE, Store
     from ..telemetry import Telemetry
 
@@ -306,7 +306,7 @@ def run_demo(
         )
         view = HerdView(gateway.model.classes)
         gateway.listeners.append(view)
-        ingest = Ingest(settings.mqtt, topic_filter=gateway.topic_filter, telemetry=telemetry)
+        ingest = open_ingest(settings, topic_filter=gateway.topic_filter, telemetry=telemetry)
 
         next_alerts = [0.0]
 

@@ -60,7 +60,7 @@ def serve(settings: Any, stop: threading.Event, *, install_sighup: bool = True) 
     from ..analytics import Analytics
     from ..daemon import Gateway
     from ..http import Health, HttpEndpoint
-    from ..ingest import Ingest
+    from ..ingestproc import open_ingest
     from ..outbox import Outputs
     from ..store import STORE_FILE, Store
     from ..systemd import Notifier
@@ -84,7 +84,7 @@ def serve(settings: Any, stop: threading.Event, *, install_sighup: bool = True) 
         analytics.add_fact_listener(outputs.listener)
         for problem in outputs.start():
             log.warning("output not working yet (retrying in the background): %s", problem)
-        ingest = Ingest(settings.mqtt, topic_filter=gateway.topic_filter, telemetry=tel)
+        ingest = open_ingest(settings, topic_filter=gateway.topic_filter, telemetry=tel)
         if settings.http.enabled:
             health = Health(
                 broker_connected=ingest.connected.is_set,
