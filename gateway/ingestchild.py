@@ -132,6 +132,10 @@ def serve(conn: Connection) -> None:
         telemetry=counters,  # type: ignore[arg-type]
         client_id=client_id,
     )
+    # A full queue here means the gateway is behind: wait for it rather than drop what the
+    # broker would otherwise keep (QoS 1). Up to the keep-alive, so that a pipeline stalled
+    # longer (a wedged disk) still lets the connection live; then drop and count.
+    ing.put_timeout_s = float(max(1, values.get("keepalive_s", 30)))
     try:
         try:
             ing.start()
@@ -167,7 +171,13 @@ def _loop(
             break
         if os.getppid() != parent:
             return  # the parent died without the pipe closing (it is shared further)
-    ing.stop()  # disconnect cleanly: the session stays on the broker
+    # Disconnect cleanly (the session stays on the broker) while still passing messages on:
+    # a network thread waiting on a full queue finishes its message once there is room.
+    stopper = threading.Thread(target=ing.stop, name="ingest-stop", daemon=True)
+    stopper.start()
+    while stopper.is_alive():
+        if msgs := ing.drain(BATCH, timeout_s=0.02):
+            send(("m", msgs))
     while msgs := ing.drain(BATCH, timeout_s=0):
         send(("m", msgs))
     if handler.records:

@@ -14,7 +14,9 @@ so the daemon does not know which one it has.
 
 - Backpressure is kept end to end: the parent reads the pipe only while it holds fewer than
   ``buffer_max`` messages, a full pipe blocks the child's sender, the child's queue fills,
-  and its network thread blocks; the broker then holds further QoS 1 messages.
+  and its network thread waits for room; the broker then holds further QoS 1 messages. It
+  waits up to the keep-alive (``mqtt.keepalive_s``) per message before it drops one and
+  counts it, so a stall of the pipeline shorter than that loses nothing.
 - The child logs through the parent (the same records, the same handlers), and its counters
   (queue drops, reconnects, connected) reach the parent's telemetry as deltas.
 - The child ignores SIGINT and SIGTERM: the parent stops it, after taking every message it

@@ -178,35 +178,47 @@ def test_stop_hands_over_every_message_the_process_took(mosquitto) -> None:
     assert first_seen == sorted(first_seen)  # in the order published (one publisher, QoS 1)
 
 
-@pytest.mark.integration
-def test_drops_in_the_process_are_counted_in_the_gateways_telemetry(mosquitto) -> None:
-    """A stalled pipeline: the child's small queue fills, its network thread waits, then drops;
-    the parent's counter says how many, and received + dropped = published."""
+def _stalled(mosquitto, client_id: str, stall_s: float, n: int = 2000) -> tuple[list, float]:
+    """Publish ``n`` frames to a process ingest nobody drains for ``stall_s``, then drain."""
     tel = Telemetry()
     ing = ProcessIngest(
-        _settings(mosquitto, client_id="proc-drops"),
+        _settings(mosquitto, client_id=client_id, keepalive_s=5),
         topic_filter=FILTER,
         queue_max=50,
         buffer_max=50,
         telemetry=tel,
     )
     ing.start()
-    n = 2000
+    got: list = []
     try:
         assert ing.wait_connected(15)
         _publish(mosquitto, [(TOPIC.format("C3"), b"d%d" % i) for i in range(n)])
-        time.sleep(4.0)  # nobody drains: the child's queue (50) and the pipe fill up
-        got: list = []
+        time.sleep(stall_s)  # nobody drains: the child's queue (50) and the socket fill up
 
         def settled() -> bool:
             got.extend(ing.drain(1000, timeout_s=0.05))
             return len(got) + tel.value("boutline_queue_dropped_total") >= n
 
         assert wait_for(settled, 30)
-        dropped = tel.value("boutline_queue_dropped_total")
-        assert dropped > 0 and len(got) + dropped == n
     finally:
         ing.stop()
+    return got, tel.value("boutline_queue_dropped_total")
+
+
+@pytest.mark.integration
+def test_a_pipeline_stalled_for_less_than_the_keepalive_loses_nothing(mosquitto) -> None:
+    """The child's network thread waits for room (the broker holds the rest: QoS 1)."""
+    got, dropped = _stalled(mosquitto, "proc-stall-short", stall_s=3.0)
+    assert dropped == 0 and [p for _, p, _ in got] == [b"d%d" % i for i in range(2000)]
+
+
+@pytest.mark.integration
+def test_drops_in_the_process_are_counted_in_the_gateways_telemetry(mosquitto) -> None:
+    """Stalled longer than the keep-alive (5 s): the child drops one message per keep-alive
+    period rather than let the connection die; the parent's counter says how many, and
+    received + dropped = published."""
+    got, dropped = _stalled(mosquitto, "proc-stall-long", stall_s=8.0)
+    assert dropped >= 1 and len(got) + dropped == 2000
 
 
 @pytest.mark.integration
