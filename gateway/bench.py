@@ -848,6 +848,7 @@ def _phase_gateway(
         "pipeline_peak_rss_mb": g["pipeline_peak_rss_mb"],
         "ingest_peak_rss_mb": g["ingest_peak_rss_mb"],
         "ingest": g["ingest"],
+        "ingest_cpu_s_per_1000_frames": 1000.0 * g["ingest_cpu_s"] / max(1, g["messages"]),
         "windows": g["windows"],
         "events_stored": g["events_stored"],
         "queue_dropped": g["queue_dropped"],

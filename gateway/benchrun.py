@@ -511,9 +511,11 @@ def _gateway(spec: GatewaySpec, conn: Any) -> dict[str, Any]:
                     conn.send(("ready", 0))
                     conn.recv()
                     cpu["0"] = cpu_now()
+                    cpu["ingest0"] = pid_cpu_s(ingest_pid())
                     prog.t_go = time.time()
                 prog.watch(finished, caught_up)
                 cpu["1"] = cpu_now()
+                cpu["ingest1"] = pid_cpu_s(ingest_pid())
                 pid = ingest_pid()
                 cpu["ingest_rss"] = (pid_peak_rss_mb(pid) or 0.0) if pid else 0.0
             finally:
@@ -523,6 +525,7 @@ def _gateway(spec: GatewaySpec, conn: Any) -> dict[str, Any]:
             conn.send(("ready", 0))
             conn.recv()
             cpu["0"] = cpu_now()
+            cpu["ingest0"] = pid_cpu_s(ingest_pid())
             prog.t_go = time.time()
         io0 = _io_write_bytes()
         if spec.profile:
@@ -540,6 +543,8 @@ def _gateway(spec: GatewaySpec, conn: Any) -> dict[str, Any]:
         figures["ingest_peak_rss_mb"] = cpu.get("ingest_rss", 0.0)
         figures["peak_rss_mb"] = (figures["peak_rss_mb"] or 0.0) + figures["ingest_peak_rss_mb"]
         figures["ingest"] = "process" if ingest_pid() else "thread"
+        # the ingest process's share of the CPU time (0 with the client in a thread)
+        figures["ingest_cpu_s"] = cpu.get("ingest1", 0.0) - cpu.get("ingest0", 0.0)
         return {
             **figures,
             **probe.figures(),
