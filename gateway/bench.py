@@ -62,9 +62,12 @@ __all__ = [
     "pid_cpu_s",
     "pid_children",
     "pid_peak_rss_mb",
+    "pid_rss_mb",
     "profile_summary",
     "run_bench",
     "summarize",
+    "tree_cpu_s",
+    "tree_mb",
     "warm_up_seconds",
 ]
 
@@ -154,18 +157,28 @@ def median_runs(runs: Sequence[dict[str, Any]]) -> dict[str, Any]:
     return out
 
 
+def _status_mb(pid: int, key: str) -> float | None:
+    """A kB field of /proc/PID/status (proc(5)) in MB, None if the process is gone."""
+    try:
+        for line in Path(f"/proc/{pid}/status").read_text().splitlines():
+            if line.startswith(key):
+                return int(line.split()[1]) / 1024.0
+    except OSError:
+        return None
+    return None
+
+
 def pid_peak_rss_mb(pid: int) -> float | None:
     """Peak resident set size (VmHWM) of a process in MB, None if it is gone.
 
     Not ``ru_maxrss``: a spawned child inherits that from the parent it was forked from.
     """
-    try:
-        for line in Path(f"/proc/{pid}/status").read_text().splitlines():
-            if line.startswith("VmHWM:"):
-                return int(line.split()[1]) / 1024.0
-    except OSError:
-        return None
-    return None
+    return _status_mb(pid, "VmHWM:")
+
+
+def pid_rss_mb(pid: int) -> float | None:
+    """Resident set size (VmRSS) of a process now, in MB; None if it is gone."""
+    return _status_mb(pid, "VmRSS:")
 
 
 def pid_children(pid: int) -> list[int]:
@@ -174,6 +187,21 @@ def pid_children(pid: int) -> list[int]:
         return [int(c) for c in Path(f"/proc/{pid}/task/{pid}/children").read_text().split()]
     except (OSError, ValueError):
         return []
+
+
+def tree_mb(pid: int, per_pid: Callable[[int], float | None]) -> float | None:
+    """``per_pid`` (pid_rss_mb, pid_peak_rss_mb) summed over a process and its children:
+    the gateway with its ingest process. Shared library pages count in each. None if
+    ``pid`` is gone."""
+    own = per_pid(pid)
+    if own is None:
+        return None
+    return own + sum(per_pid(c) or 0.0 for c in pid_children(pid))
+
+
+def tree_cpu_s(pid: int) -> float:
+    """CPU seconds of a process and its children so far."""
+    return pid_cpu_s(pid) + sum(pid_cpu_s(c) for c in pid_children(pid))
 
 
 def pid_cpu_s(pid: int | None) -> float:

@@ -492,9 +492,10 @@ def _gateway(spec: GatewaySpec, conn: Any) -> dict[str, Any]:
         def ingest_pid() -> int | None:
             return getattr(ingest, "pid", None)
 
-        def cpu_now() -> float:
+        def mark_cpu(at: str) -> None:
             # all threads of this process, and the ingest process if there is one
-            return time.process_time() + pid_cpu_s(ingest_pid())
+            cpu[f"ingest{at}"] = pid_cpu_s(ingest_pid())
+            cpu[at] = time.process_time() + cpu[f"ingest{at}"]
 
         def finished() -> bool:
             # everything handled, then a tick (inference, tracker, store) after the last
@@ -510,12 +511,10 @@ def _gateway(spec: GatewaySpec, conn: Any) -> dict[str, Any]:
                 if not spec.backlog:
                     conn.send(("ready", 0))
                     conn.recv()
-                    cpu["0"] = cpu_now()
-                    cpu["ingest0"] = pid_cpu_s(ingest_pid())
+                    mark_cpu("0")
                     prog.t_go = time.time()
                 prog.watch(finished, caught_up)
-                cpu["1"] = cpu_now()
-                cpu["ingest1"] = pid_cpu_s(ingest_pid())
+                mark_cpu("1")
                 pid = ingest_pid()
                 cpu["ingest_rss"] = (pid_peak_rss_mb(pid) or 0.0) if pid else 0.0
             finally:
@@ -524,8 +523,7 @@ def _gateway(spec: GatewaySpec, conn: Any) -> dict[str, Any]:
         if spec.backlog:
             conn.send(("ready", 0))
             conn.recv()
-            cpu["0"] = cpu_now()
-            cpu["ingest0"] = pid_cpu_s(ingest_pid())
+            mark_cpu("0")
             prog.t_go = time.time()
         io0 = _io_write_bytes()
         if spec.profile:

@@ -43,7 +43,7 @@ from typing import Any
 
 import numpy as np
 
-from .bench import pid_children, pid_cpu_s
+from .bench import pid_rss_mb, tree_cpu_s, tree_mb
 from .benchrun import Children, mqtt_client, recv
 from .errors import BoutlineError, ConfigError
 
@@ -277,28 +277,6 @@ def _influx_count(url: str) -> int:
         return 0
 
 
-def _vm_rss_mb(pid: int) -> float | None:
-    try:
-        for line in Path(f"/proc/{pid}/status").read_text().splitlines():
-            if line.startswith("VmRSS:"):
-                return int(line.split()[1]) / 1024.0
-    except OSError:
-        return None
-    return None
-
-
-def _tree_rss_mb(pid: int) -> float | None:
-    """RSS of the gateway and its children, MB (shared library pages count in each)."""
-    own = _vm_rss_mb(pid)
-    if own is None:
-        return None
-    return own + sum(_vm_rss_mb(c) or 0.0 for c in pid_children(pid))
-
-
-def _tree_cpu_s(pid: int) -> float:
-    return pid_cpu_s(pid) + sum(pid_cpu_s(c) for c in pid_children(pid))
-
-
 def _boutline_argv() -> list[str]:
     exe = shutil.which("boutline") or str(Path(sys.executable).with_name("boutline"))
     if os.access(exe, os.X_OK):
@@ -451,8 +429,8 @@ def _drive(
                 {
                     "wall_s": round(now - wall0, 1),
                     "sim_days": round(sim_s / 86400.0, 4),
-                    "rss_mb": _tree_rss_mb(gateway.pid),
-                    "cpu_s": round(_tree_cpu_s(gateway.pid), 2),
+                    "rss_mb": tree_mb(gateway.pid, pid_rss_mb),
+                    "cpu_s": round(tree_cpu_s(gateway.pid), 2),
                     "frames_in": m.get("boutline_frames_in_total"),
                     "bouts": m.get('boutline_events_total{kind="bout_closed"}'),
                 }

@@ -253,6 +253,7 @@ class ProcessIngest:
                 self._lost_child()
 
     def _lost_child(self) -> None:
+        """The child's socket is closed (or was): no broker connection to speak of."""
         if self._conn is not None:
             with contextlib.suppress(OSError):
                 self._conn.close()
@@ -345,9 +346,7 @@ class ProcessIngest:
         with self._pump_lock:
             self._stop_child()
         self._reap()
-        self.connected.clear()
-        self.subscribed.clear()
-        self.telemetry.broker_connected.set(0)
+        self._lost_child()
 
     def _stop_child(self) -> None:
         conn = self._conn

@@ -22,7 +22,7 @@ from typing import Any
 
 from prometheus_client.parser import text_string_to_metric_families
 
-from gateway.bench import pid_children, pid_peak_rss_mb
+from gateway.bench import pid_peak_rss_mb, tree_mb
 from gateway.servers import free_port
 
 __all__ = ["Daemon", "finish", "publish_herd", "toml", "write_assignments"]
@@ -221,9 +221,9 @@ class Daemon:
 
     def peak_rss_mb(self) -> float:
         """The gateway's peak RSS with its MQTT ingest process's ([process] ingest)."""
-        v = pid_peak_rss_mb(self.pid)
+        v = tree_mb(self.pid, pid_peak_rss_mb)
         assert v is not None, "gateway process is gone"
-        return v + sum(pid_peak_rss_mb(c) or 0.0 for c in pid_children(self.pid))
+        return v
 
     def stop(self, timeout_s: float = 30.0) -> int:
         """SIGTERM and wait; the exit code."""

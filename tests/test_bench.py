@@ -7,6 +7,8 @@ from __future__ import annotations
 
 import multiprocessing as mp
 import os
+import subprocess
+import sys
 import time
 from pathlib import Path
 
@@ -203,6 +205,21 @@ def test_process_figures_of_this_process_and_of_a_gone_one() -> None:
     p.start()
     p.join()
     assert bench.pid_peak_rss_mb(p.pid) is None and bench.pid_cpu_s(p.pid) == 0.0
+    assert bench.tree_mb(p.pid, bench.pid_rss_mb) is None
+
+
+def test_tree_figures_add_the_children() -> None:
+    child = subprocess.Popen([sys.executable, "-c", "import time; time.sleep(30)"])
+    try:
+        assert child.pid in bench.pid_children(os.getpid())
+        own, kid = bench.pid_rss_mb(os.getpid()), bench.pid_rss_mb(child.pid)
+        assert own and kid
+        total = bench.tree_mb(os.getpid(), bench.pid_rss_mb)
+        assert total is not None and total >= own + 0.5 * kid  # RSS moves a little between reads
+        assert bench.tree_cpu_s(os.getpid()) >= bench.pid_cpu_s(os.getpid())
+    finally:
+        child.kill()  # the process started above, by its handle
+        child.wait(10)
 
 
 @pytest.mark.parametrize(

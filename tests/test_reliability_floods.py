@@ -18,7 +18,7 @@ from daemonproc import Daemon
 from mqttpeers import Subscriber, client, publish_all
 from polling import wait_for
 
-from gateway.bench import pid_children
+from gateway.bench import pid_rss_mb, tree_mb
 from gateway.config import Settings
 from gateway.daemon import Gateway, TickResult
 from gateway.outbox import GatewayAlert
@@ -48,12 +48,8 @@ def _herd_frames(n: int, start: float, seconds: int, seed: int) -> dict[str, lis
 
 def _rss_mb(pid: int) -> float:
     """RSS of the gateway and its MQTT ingest process ([process] ingest), MB."""
-    total = 0.0
-    for p in [pid, *pid_children(pid)]:
-        for line in Path(f"/proc/{p}/status").read_text().splitlines():
-            if line.startswith("VmRSS:"):
-                total += int(line.split()[1]) / 1024.0
-    assert total > 0, "no VmRSS"
+    total = tree_mb(pid, pid_rss_mb)
+    assert total, "no VmRSS"
     return total
 
 
