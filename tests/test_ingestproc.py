@@ -18,8 +18,8 @@ import pytest
 from paho.mqtt.enums import CallbackAPIVersion
 from polling import wait_for
 
-from gateway.config import MqttSettings, Settings
-from gateway.errors import BrokerError
+from gateway.config import MqttSettings, Settings, load_settings
+from gateway.errors import BrokerError, ConfigError
 from gateway.ingest import Ingest
 from gateway.ingestproc import ProcessIngest, open_ingest, use_process
 from gateway.telemetry import Telemetry
@@ -80,6 +80,15 @@ def test_the_setting_picks_the_kind_of_ingest() -> None:
     assert isinstance(open_ingest(s, topic_filter=FILTER), Ingest)
     s = Settings.model_validate({"process": {"ingest": "process"}})
     assert isinstance(open_ingest(s, topic_filter=FILTER), ProcessIngest)
+
+
+@pytest.mark.parametrize("bad", ['"fork"', '"Process"', '""', "1", "true", '"' + "p" * 5000 + '"'])
+def test_config_refuses_other_ingest_values(tmp_path: Path, bad: str) -> None:
+    p = tmp_path / "b.toml"
+    p.write_text(f"[process]\ningest = {bad}\n")
+    with pytest.raises(ConfigError, match="process.ingest"):
+        load_settings(p, env={})
+    assert load_settings(None, env={}).process.ingest == "auto"
 
 
 @pytest.mark.integration
