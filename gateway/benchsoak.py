@@ -99,6 +99,9 @@ def growth_per_day(days: np.ndarray, rss_mb: np.ndarray) -> float | None:
 # ----------------------------------------------------------------------------- publishers
 
 
+_INFLIGHT = 1000  # QoS 1 messages a soak publisher has on the wire, unacknowledged
+
+
 @dataclass(frozen=True)
 class _PubSpec:
     host: str
@@ -127,7 +130,7 @@ def _soak_publish(spec: _PubSpec, conn: Any) -> dict[str, Any]:
     client = mqtt_client(f"soak-pub-{spec.k}", "3.1.1", persistent=True)
     acked = [0]
     client.on_publish = lambda *_a: acked.__setitem__(0, acked[0] + 1)
-    client.max_inflight_messages_set(1000)
+    client.max_inflight_messages_set(_INFLIGHT)
     client.reconnect_delay_set(0.5, 4.0)
     client.connect(spec.host, spec.port, keepalive=30)
     client.loop_start()
@@ -141,8 +144,11 @@ def _soak_publish(spec: _PubSpec, conn: Any) -> dict[str, Any]:
             due = wall0 + (float(block.sent[j]) - spec.start) / spec.speed
             while (wait := due - time.time()) > 0:
                 time.sleep(min(wait, 0.05))
-            while sent - acked[0] > 20_000:  # broker away: hold on rather than pile up
-                time.sleep(0.01)
+            # Never more unacknowledged than paho's in-flight window, broker there or away:
+            # paho walks its whole queue of unsent messages at every PUBACK, so a deeper
+            # queue costs the publisher more CPU than the gateway it is meant to load.
+            while sent - acked[0] >= _INFLIGHT:
+                time.sleep(0.005)
             f = Frame(ids[r], seqs[j], float(block.t[j]), herd.hz, block.acc[j],
                       float(block.battery_v[j]))  # fmt: skip
             payload = encode_json(f) if spec.fmt == "json" else encode_binary(f)
