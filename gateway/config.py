@@ -122,7 +122,7 @@ class MqttSettings(_Section):
 class ModelSettings(_Section):
     path: str = Field("", description="ONNX model file; empty: the shipped default")
     watch: bool = Field(True, description="hot-reload when the file changes or on SIGHUP")
-    batch_max: int = Field(4096, ge=1, le=65536, description="windows per inference call")
+    batch_max: int = Field(1024, ge=1, le=65536, description="windows per inference call")
 
 
 class WindowsSettings(_Section):

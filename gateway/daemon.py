@@ -31,6 +31,7 @@ from .errors import StoreError
 from .infer import Inference
 from .ingest import Ingest, Message, collar_filter
 from .ingestproc import ProcessIngest, open_ingest
+from .memory import tune_malloc
 from .model import Model
 from .outbox import GatewayAlert
 from .registry import Registry, load_assignments
@@ -76,6 +77,7 @@ class Gateway:
         store: Store | None = None,
         analytics: Analytics | None = None,
     ) -> None:
+        tune_malloc()  # before the model and the ring buffers (gateway/memory.py)
         self.settings = settings
         self.telemetry = telemetry or Telemetry()
         tel = self.telemetry

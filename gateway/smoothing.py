@@ -341,7 +341,9 @@ class SmootherBank:
     def _new_slot(self, animal: str) -> int:
         slot = len(self._names)
         if slot >= self._cap:
-            self._resize(self._cap * 2, self._ring)
+            # a quarter more, not double: at 10,000 animals doubling leaves up to 8 MB unused,
+            # and the old and new arrays are both alive while they are copied
+            self._resize(max(self._cap + 16, self._cap * 5 // 4), self._ring)
         self._names.append(animal)
         self._slots[animal] = slot
         return slot

@@ -13,8 +13,9 @@ animal's windows start on the same instants, multiples of the hop.
 - Order: a frame that starts after a gap waits up to ``reorder_s`` (collar time) for the
   frames before it; later than that the gap is committed and the late frame is rejected
   (``late``). Samples at or before the last committed sample are never used twice.
-- Duplicates: the same ``seq`` with the same ``t`` as one of the last 256 frames is dropped
-  (``seq`` wraps at 2^32, so equality is all that is compared).
+- Duplicates: the same ``seq`` with the same ``t`` (to the millisecond: the times rounded to
+  whole ms differ by at most 1) as one of the last 256 frames is dropped (``seq`` wraps at
+  2^32, so equality is all that is compared).
 - Gaps: grid points more than 1.5 collar sample periods from a real sample are missing; they
   carry the linear interpolation between the samples around the gap (or the last value held)
   and are marked. A window whose missing share is above ``max_missing`` is not classified:
@@ -47,7 +48,6 @@ animal's windows start on the same instants, multiples of the hop.
 from __future__ import annotations
 
 import math
-from array import array
 from bisect import insort
 from dataclasses import dataclass
 
@@ -62,13 +62,17 @@ from .wire import Reason, Rejection
 __all__ = ["Ready", "Windows"]
 
 _DUP_MEMORY = 256  # frames per stream remembered for duplicate detection
-_NO_TIMES = [math.nan] * _DUP_MEMORY
 _MAX_PENDING = 64  # frames held for reordering per stream; more is a flood, commit the oldest
 _BURST_S = 60.0  # token bucket depth: a minute of frames at the rate limit
 _GAP_PERIODS = 1.5  # a hole longer than this many sample periods is missing data
 _JITTER_S = 5.0  # gateway seconds a frame may be delayed (broker, queue) and still not be late
 _ALL_SILENT_S = 60.0  # gateway seconds without any frame before silence is judged on the wall clock
 _EPS = 1e-6  # grid rounding slack in samples (float time of ~1.7e9 s has ~2e-7 s resolution)
+
+
+def _ms(t: float) -> int:
+    """A collar time in whole milliseconds, modulo 2^32 (the duplicate memory's time)."""
+    return math.floor(t * 1000.0 + 0.5) & 0xFFFFFFFF
 
 
 @dataclass(slots=True)
@@ -91,9 +95,9 @@ class _Stream:
         "tail_v",
         "watermark",
         "pending",
-        "seq_ring",
-        "t_ring",
-        "seq_at",
+        "dup",
+        "dup_n",
+        "dup_at",
         "last_rx",
         "tokens",
         "tok_at",
@@ -112,11 +116,11 @@ class _Stream:
         self.tail_v = np.zeros(3, dtype=np.float64)
         self.watermark = -math.inf  # latest frame end seen (collar clock)
         self.pending: list[tuple[float, int, Frame]] = []  # sorted by t
-        # duplicate memory: the (seq, collar time) of the last _DUP_MEMORY frames in two
-        # flat rings, 3 kB a collar (the dict it replaced took 8 kB: docs/performance.md)
-        self.seq_ring = bytearray(4 * _DUP_MEMORY)  # little-endian uint32 per slot
-        self.t_ring = array("d", _NO_TIMES)  # NaN: an empty slot never matches
-        self.seq_at = 0  # next slot to write
+        # duplicate memory: the (seq, collar time in ms) of the last _DUP_MEMORY frames in
+        # one flat ring of 8-byte slots, 2 kB a collar (docs/performance.md, change 8)
+        self.dup = bytearray(8 * _DUP_MEMORY)  # per slot: uint32 seq, uint32 ms, little-endian
+        self.dup_n = 0  # slots filled (the first dup_n; all of them once the ring went round)
+        self.dup_at = 0  # next slot to write
         self.last_rx = 0.0
         self.tokens = -1.0  # < 0: bucket not started
         self.tok_at = 0.0
@@ -226,7 +230,7 @@ class Windows:
             return Rejection(Reason.RATE_LIMITED, f"over {self.rate:g} frames/s", frame.collar_id)
         if frame.collar_id != st.collar:  # a new collar on this animal starts a new sequence
             st.collar = frame.collar_id
-            st.t_ring = array("d", _NO_TIMES)
+            st.dup_n = st.dup_at = 0
         t = frame.t
         span = frame.n / frame.hz
         if rx > 0.0 and (t > rx + self.clock_future_s or t + span < rx - self.clock_past_s):
@@ -279,23 +283,27 @@ class Windows:
     def _seen(st: _Stream, seq: int, t: float) -> bool:
         """A frame with this seq and (to 1 ms) this collar time among the remembered ones.
 
-        The seq ring is searched as bytes (a C loop, ~0.3 us); a hit counts only on a slot
-        boundary.
+        The ring is searched for the seq's bytes (a C loop, ~0.3 us); a hit counts only at
+        the start of a slot, and then if the slot's millisecond time is within 1 of ``t``'s
+        (modulo 2^32 ms, 49.7 days: a repeat that far apart is not in the last 256 frames).
         """
-        ring, key = st.seq_ring, (seq & 0xFFFFFFFF).to_bytes(4, "little")
-        pos = ring.find(key)
+        ring, key, end = st.dup, (seq & 0xFFFFFFFF).to_bytes(4, "little"), 8 * st.dup_n
+        pos = ring.find(key, 0, end)
         while pos >= 0:
-            if not pos & 3 and abs(st.t_ring[pos >> 2] - t) < 1e-3:
-                return True
-            pos = ring.find(key, pos + 1)
+            if not pos & 7:
+                ms = int.from_bytes(ring[pos + 4 : pos + 8], "little")
+                if (ms - _ms(t) + 1) & 0xFFFFFFFF <= 2:
+                    return True
+            pos = ring.find(key, pos + 1, end)
         return False
 
     @staticmethod
     def _remember_seq(st: _Stream, seq: int, t: float) -> None:
-        i = st.seq_at
-        st.seq_ring[4 * i : 4 * i + 4] = (seq & 0xFFFFFFFF).to_bytes(4, "little")
-        st.t_ring[i] = t
-        st.seq_at = (i + 1) % _DUP_MEMORY
+        i = st.dup_at
+        st.dup[8 * i : 8 * i + 8] = (seq & 0xFFFFFFFF | _ms(t) << 32).to_bytes(8, "little")
+        st.dup_at = (i + 1) % _DUP_MEMORY
+        if st.dup_n < _DUP_MEMORY:
+            st.dup_n += 1
 
     def _drain_pending(self, st: _Stream, force: bool = False) -> None:
         while st.pending:

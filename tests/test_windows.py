@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 import pytest
 from hypothesis import given, settings
@@ -164,19 +166,24 @@ def test_duplicates_are_dropped_and_seq_wraps() -> None:
         st.tuples(
             # few distinct values, and ones whose bytes straddle slot boundaries when packed
             st.sampled_from([0, 1, 255, 256, 0x01000000, 0x00010100, 2**32 - 1, 7, 0x0707]),
-            st.sampled_from([0.0, 0.0004, 0.5, 1.0]),
+            # times on both sides of the 1 ms rule (rounded to whole ms, at most 1 apart)
+            st.sampled_from([0.0, 0.0004, 0.0014, 0.0016, 0.0026, 0.5, 1.0, 1.7e9 + 0.001]),
         ),
         max_size=600,
     )
 )
 def test_duplicate_memory_matches_a_plain_list_of_the_last_frames(items) -> None:
     """The byte-ring duplicate memory against the obvious model: a frame is a duplicate when
-    one of the last 256 remembered frames has its seq and a collar time within 1 ms."""
+    one of the last 256 remembered frames has its seq and a collar time within 1 ms (times
+    rounded to whole milliseconds differ by at most 1: the rule in gateway/windows.py)."""
     from gateway.windows import _DUP_MEMORY, _Stream
+
+    def ms(t: float) -> int:
+        return math.floor(t * 1000 + 0.5)
 
     stream, model = _Stream("a", 10), []
     for seq, t in items:
-        want = any(s == seq and abs(u - t) < 1e-3 for s, u in model[-_DUP_MEMORY:])
+        want = any(s == seq and abs(ms(u) - ms(t)) <= 1 for s, u in model[-_DUP_MEMORY:])
         assert Windows._seen(stream, seq, t) == want
         Windows._remember_seq(stream, seq, t)
         model.append((seq, t))
