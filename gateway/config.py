@@ -130,8 +130,8 @@ class WindowsSettings(_Section):
 
     max_missing: float = Field(0.2, ge=0, le=0.9, description="share of a window that may be gap")
     reorder_s: float = Field(5.0, ge=0, le=120, description="late frames accepted within this")
-    # 30 s = 2 windows + 2 hops of the default model, all the ring needs (docs/performance.md)
-    buffer_s: float = Field(30.0, ge=10, le=3600, description="ring buffer length per animal")
+    # 20 s = a window + 2 hops of the default model, all the ring needs (docs/performance.md)
+    buffer_s: float = Field(20.0, ge=10, le=3600, description="ring buffer length per animal")
     clock_future_s: float = Field(300.0, ge=0, le=86400)
     clock_past_s: float = Field(86400.0, ge=0, le=30 * 86400)
     clock_rule: Literal["substitute", "reject"] = Field(

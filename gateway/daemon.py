@@ -31,7 +31,7 @@ from .errors import StoreError
 from .infer import Inference
 from .ingest import Ingest, Message, collar_filter
 from .ingestproc import ProcessIngest, open_ingest
-from .memory import tune_malloc
+from .memory import TRIM_EVERY_S, trim_heap, tune_malloc
 from .model import Model
 from .outbox import GatewayAlert
 from .registry import Registry, load_assignments
@@ -374,6 +374,7 @@ class Gateway:
         pinned = pin_threads(self.settings.process.cpu)
         ingest.start()
         next_tick = time.monotonic() + tick_s
+        next_trim = time.monotonic() + TRIM_EVERY_S
         try:
             while not stop.is_set():
                 ingest.check()
@@ -386,6 +387,9 @@ class Gateway:
                     r = self.tick()
                     if on_tick is not None:
                         on_tick(r)
+                    if next_tick >= next_trim:  # what a tick's small objects left free
+                        next_trim = next_tick + TRIM_EVERY_S
+                        trim_heap()
         finally:
             ingest.stop()
             # what the network thread had queued before it stopped is still ours to keep

@@ -47,7 +47,7 @@ from typing import Any
 from .affinity import allowed_cpus
 from .config import MqttSettings
 from .errors import BoutlineError, BrokerAuthError, BrokerError, ConfigError
-from .ingest import QUEUE_MAX, QUEUE_MAX_BYTES, Ingest, Message, validate_filter
+from .ingest import QUEUE_MAX_BYTES, Ingest, Message, validate_filter
 from .telemetry import Telemetry
 
 __all__ = ["ProcessIngest", "open_ingest", "use_process"]
@@ -62,6 +62,14 @@ _ERRORS: dict[str, type[BoutlineError]] = {
     "BrokerError": BrokerError,
     "BrokerAuthError": BrokerAuthError,
 }
+
+# Messages held between the broker and the pipeline: the child's queue, then the parent's
+# buffer (one drain of the daemon's loop). A burst of a second of 10,000 collars fits; the
+# broker holds the rest of a longer backlog (its session, max_queued_messages 100000 in
+# deploy/mosquitto). Half of the thread ingest's 20,000: both processes are resident, and
+# 15,000 messages of JSON frames are ~11 MB (docs/performance.md, change 9).
+CHILD_QUEUE_MAX = 10_000
+BUFFER_MAX = 5_000
 
 
 def use_process(setting: str, cpus: set[int]) -> bool:
@@ -104,11 +112,11 @@ class ProcessIngest:
         settings: MqttSettings,
         *,
         topic_filter: str,
-        queue_max: int = QUEUE_MAX,  # the child's queue, as Ingest's
+        queue_max: int = CHILD_QUEUE_MAX,  # the child's queue
         queue_max_bytes: int = QUEUE_MAX_BYTES,
         telemetry: Telemetry | None = None,
         client_id: str | None = None,
-        buffer_max: int = 10_000,
+        buffer_max: int = BUFFER_MAX,
         max_restarts: int = 5,
     ) -> None:
         self.settings = settings

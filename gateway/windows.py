@@ -139,7 +139,7 @@ class Windows:
         hop_len: int,
         max_missing: float = 0.2,
         reorder_s: float = 5.0,
-        buffer_s: float = 30.0,
+        buffer_s: float = 20.0,
         clock_future_s: float = 300.0,
         clock_past_s: float = 86400.0,
         clock_rule: str = "substitute",
@@ -156,8 +156,8 @@ class Windows:
         self.H = int(hop_len)
         self.hop_s = self.H / self.fs
         self.window_s = self.T / self.fs
-        # The ring must hold a window plus a hop of room to write into; buffer_s may ask more.
-        self.L = max(int(math.ceil(buffer_s * self.fs)), 2 * self.T + 2 * self.H)
+        # The ring must hold a window plus room to write into (two hops); buffer_s may ask more.
+        self.L = max(int(math.ceil(buffer_s * self.fs)), self.T + 2 * self.H)
         self._chunk = self.L - self.T  # largest write that cannot overwrite an unread window
         self.max_missing = float(max_missing)
         self.reorder_s = float(reorder_s)

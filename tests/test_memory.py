@@ -21,7 +21,7 @@ pytestmark = pytest.mark.skipif(
 _SCRIPT = """
 import sys
 import numpy as np
-from gateway.memory import tune_malloc
+from gateway.memory import trim_heap, tune_malloc
 
 def anon_mb():
     for line in open("/proc/self/status"):
@@ -38,6 +38,8 @@ for i in range(60):
     tick.append(np.ones(131_072))  # 1 MB each, a tick's transient
     keep.append(bytearray(4000))  # long-lived small objects between them (glibc heap)
 tick.clear()
+if sys.argv[1] == "trimmed":
+    assert trim_heap() is True
 print(round(anon_mb() - base, 1))
 """
 
@@ -59,6 +61,10 @@ def test_untuned_malloc_keeps_them_which_is_why_the_gateway_tunes() -> None:
     # to 32 MB) puts the 1 MB arrays on the heap after the 16 MB free, and the small objects
     # between them pin it; seen here: 60 MB kept untuned, 0.1 MB tuned
     assert _retained_mb("plain") > 30.0
+
+
+def test_trim_gives_back_what_untuned_malloc_kept() -> None:
+    assert _retained_mb("trimmed") < 8.0
 
 
 def test_tune_malloc_is_idempotent() -> None:
