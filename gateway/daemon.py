@@ -96,6 +96,7 @@ class Gateway:
                 telemetry=tel,
             )
         self.inference.on_reload = self._model_reloaded
+        trim_heap()  # loading a model session leaves ~14 MB free on the heap (docs/performance.md)
         m = self.inference.model
         assignments = (
             load_assignments(settings.site.assignments) if settings.site.assignments else []
@@ -170,6 +171,7 @@ class Gateway:
         self.tracker.params = params
         for sm in self.tracker.smoothers.values():
             sm.params = params
+        trim_heap()  # what building the new session and dropping the old one left free
 
     # ------------------------------------------------------------------ frames in
 
