@@ -106,6 +106,10 @@ def test_run_classifies_reloads_on_sighup_and_stops_on_sigterm(tmp_path: Path, m
         while _metric(http_port, "boutline_windows_classified_total") < 30:
             assert time.monotonic() < deadline, "no windows classified"
             time.sleep(0.2)
+        # windows are classified while the last frames may still be on their way
+        while _metric(http_port, "boutline_frames_in_total") < 200.0:
+            assert time.monotonic() < deadline, "not every frame arrived"
+            time.sleep(0.2)
         assert _metric(http_port, "boutline_frames_in_total") == 200.0
         (tmp_path / "m.onnx").write_bytes(level_model(reverse=True))
         proc.send_signal(signal.SIGHUP)
@@ -119,6 +123,8 @@ def test_run_classifies_reloads_on_sighup_and_stops_on_sigterm(tmp_path: Path, m
         if proc.poll() is None:
             proc.kill()
             proc.wait(10)
+        if proc.stdout is not None:  # a failed test must not leak the pipe into the next one
+            proc.stdout.close()
     text = out.decode()
     assert proc.returncode == 0, text
     assert "model reloaded" in text and "Traceback" not in text
