@@ -60,6 +60,7 @@ class SoakOptions:
     collars: int = 100
     days: float = 7.0
     speed: float = 50.0  # herd seconds per wall second: a week in 3.4 hours
+    frame_s: float = 1.0  # herd seconds per frame: 2 halves the frame rate at the same samples
     broker_every_s: float = 600.0  # wall seconds between broker restarts
     db_every_s: float = 900.0  # wall seconds between database outages
     db_down_s: float = 60.0
@@ -77,6 +78,8 @@ class SoakOptions:
             raise ConfigError("soak days must be between 0 and 30 (the clock rule's limit)")
         if not 1 <= self.speed <= 1000:
             raise ConfigError("soak speed must be between 1 and 1000 herd seconds per second")
+        if not 0.1 <= self.frame_s <= 60:
+            raise ConfigError("soak frame length must be between 0.1 and 60 s")
         if self.fmt not in ("json", "binary"):
             raise ConfigError(f"format {self.fmt!r} is not json or binary")
         if min(self.broker_every_s, self.db_every_s) < 30 or self.db_down_s < 0:
@@ -114,6 +117,7 @@ class _PubSpec:
     fmt: str
     k: int
     p: int
+    frame_s: float = 1.0
 
 
 def _soak_publish(spec: _PubSpec, conn: Any) -> dict[str, Any]:
@@ -123,7 +127,12 @@ def _soak_publish(spec: _PubSpec, conn: Any) -> dict[str, Any]:
     from .wire import collar_topic, encode_binary, encode_json
 
     herd = Herd(
-        spec.collars, seed=spec.seed, start=spec.start, days=spec.days, shard=(spec.k, spec.p)
+        spec.collars,
+        seed=spec.seed,
+        start=spec.start,
+        days=spec.days,
+        frame_s=spec.frame_s,
+        shard=(spec.k, spec.p),
     ).endless()
     ids = [herd.collar_ids[i] for i in herd.local]
     topics = [collar_topic(PREFIX, SITE, c) for c in ids]
@@ -339,6 +348,7 @@ def run_soak(opts: SoakOptions, progress: Callable[[str], None] | None = None) -
                     opts.fmt,
                     k,
                     opts.publishers,
+                    opts.frame_s,
                 ),
             )  # fmt: skip
             for k in range(opts.publishers)
@@ -505,6 +515,7 @@ def format_soak(r: dict[str, Any]) -> str:
     grow = rss["growth_mb_per_day"]
     lines = [
         f"soak: {o['collars']} collars, {o['days']:g} simulated days at {o['speed']:g}x"
+        f" ({o.get('frame_s', 1.0):g} s frames)"
         f" in {r['wall_s'] / 60:.0f} min; broker restarted {r['restarts']['broker']}x,"
         f" database down {r['restarts']['database']}x for {o['db_down_s']:g} s",
         f"frames: {f['acked_by_broker']:,.0f} acknowledged by the broker,"

@@ -231,6 +231,8 @@ def test_tree_figures_add_the_children() -> None:
         (["bench", "--phases", "gateway,magic"], 1, "--phases"),
         (["bench", "--soak", "--soak-days", "0"], 1, "soak days must be between"),
         (["bench", "--soak", "--soak-speed", "5000"], 1, "soak speed must be between"),
+        (["bench", "--soak", "--soak-frame-s", "0"], 1, "soak frame length must be between"),
+        (["bench", "--soak", "--soak-frame-s", "nan"], 1, "soak frame length must be between"),
     ],
 )
 def test_cli_refuses_bad_options_in_one_line(

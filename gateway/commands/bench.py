@@ -45,12 +45,12 @@ def _write(out: Path, report: dict) -> None:
         raise BoutlineError(f"cannot write {out} ({exc.strerror}); give another --out") from exc
 
 
-def _soak(days: float, speed: float, fmt: str, seed: int, out: Path) -> None:
+def _soak(days: float, speed: float, frame_s: float, fmt: str, seed: int, out: Path) -> None:
     import sys
 
     from ..benchsoak import SoakOptions, format_soak, run_soak
 
-    opts = SoakOptions(days=days, speed=speed, fmt=fmt, seed=seed)
+    opts = SoakOptions(days=days, speed=speed, frame_s=frame_s, fmt=fmt, seed=seed)
     opts.check()
     report = run_soak(opts, progress=lambda m: print(m, file=sys.stderr, flush=True))
     typer.echo(format_soak(report))
@@ -101,6 +101,11 @@ def bench(
     soak_speed: float = typer.Option(
         50.0, "--soak-speed", help="Herd seconds per wall second in the soak."
     ),
+    soak_frame_s: float = typer.Option(
+        1.0,
+        "--soak-frame-s",
+        help="Herd seconds per collar frame in the soak (2: half the frames, same samples).",
+    ),
 ) -> None:
     """Measure gateway throughput, latency and memory against the bare-subscriber limit.
 
@@ -118,7 +123,7 @@ def bench(
     from ._progress import step_progress
 
     if soak:
-        _soak(soak_days, soak_speed, fmt, seed, out)
+        _soak(soak_days, soak_speed, soak_frame_s, fmt, seed, out)
         return
     opts = BenchOptions(
         collars=_collars(collars),
