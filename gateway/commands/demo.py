@@ -12,6 +12,7 @@ from __future__ import annotations
 import contextlib
 import math
 import re
+import signal
 import threading
 import time
 from collections import defaultdict
@@ -223,7 +224,47 @@ def run_demo(
     max_wall_s: float | None = None,
     console: Any = None,
 ) -> dict[str, Any]:
-    """Run the demo; returns its summary (also printed)."""
+    """Run the demo; returns its summary (also printed).
+
+    The first Ctrl-C ends it with the summary, wherever it comes (start-up included).
+    """
+    interrupt = threading.Event()
+    old_handler = _catch_ctrl_c(interrupt)
+    try:
+        return _run_demo(
+            herd=herd,
+            speed=speed,
+            duration_s=duration_s,
+            broker=broker,
+            seed=seed,
+            scenario=scenario,
+            data_dir=data_dir,
+            model=model,
+            live=live,
+            max_wall_s=max_wall_s,
+            console=console,
+            interrupt=interrupt,
+        )
+    finally:
+        if old_handler is not None:
+            signal.signal(signal.SIGINT, old_handler)
+
+
+def _run_demo(
+    *,
+    herd: int,
+    speed: float | None,
+    duration_s: float,
+    broker: str | None,
+    seed: int,
+    scenario: str,
+    data_dir: Path | None,
+    model: Path | None,
+    live: bool,
+    max_wall_s: float | None,
+    console: Any,
+    interrupt: threading.Event,
+) -> dict[str, Any]:
     from rich.console import Console
     from rich.live import Live
 
@@ -297,7 +338,6 @@ def run_demo(
     stop_pub, stop_gw = threading.Event(), threading.Event()
     pub_state: dict[str, Any] = {"frames": 0, "sim_s": 0.0, "result": None, "error": None}
     gw_error: list[BaseException] = []
-    interrupted = False
     wall0 = time.monotonic()
     try:
         analytics = Analytics(settings, speed=speed)
@@ -323,10 +363,14 @@ def run_demo(
 
         gw_thread = threading.Thread(target=gw_main, name="gateway", daemon=True)
         gw_thread.start()
-        if not ingest.wait_connected(15):
-            raise ConfigError(
-                f"the gateway could not subscribe at {host}:{port}; is the broker up?"
-            )
+        deadline = time.monotonic() + 15.0
+        while not ingest.wait_connected(0.25) and not interrupt.is_set():
+            if time.monotonic() > deadline or gw_error:
+                if gw_error:
+                    raise gw_error[0]
+                raise ConfigError(
+                    f"the gateway could not subscribe at {host}:{port}; is the broker up?"
+                )
 
         def report(frames: int, nbytes: int, sim_s: float) -> None:
             pub_state["frames"], pub_state["sim_s"] = frames, sim_s
@@ -351,10 +395,13 @@ def run_demo(
             except BaseException as exc:  # noqa: BLE001 - shown by the main thread
                 pub_state["error"] = exc
 
-        pub_thread = threading.Thread(target=pub_main, name="simulator", daemon=True)
-        pub_thread.start()
         pace = "flat out" if speed is None else f"{speed:g}x"
         title = f"Boutline demo: {herd} animals on {SITE}, {pace}; minutes today per behaviour"
+        if not interrupt.is_set():
+            pub_thread = threading.Thread(target=pub_main, name="simulator", daemon=True)
+            pub_thread.start()
+            if not live:
+                console.print(f"{title}; store {data_dir}; Ctrl-C ends")
 
         def status() -> dict[str, Any]:
             s = gateway.status()
@@ -377,18 +424,21 @@ def run_demo(
                     transient=False,
                     auto_refresh=False,
                 )
-                if live
+                if live and not interrupt.is_set()
                 else contextlib.nullcontext() as lv
             ):
-                while pub_thread.is_alive() and not gw_error:
+                while pub_thread and pub_thread.is_alive() and not gw_error:
                     pub_thread.join(0.5)
+                    if interrupt.is_set():
+                        break
                     if lv is not None:
                         lv.update(_table(view, status(), title), refresh=True)
-                _wait_drained(gateway, pub_state, gw_error)
+                if not interrupt.is_set():
+                    _wait_drained(gateway, pub_state, gw_error, interrupt)
                 if lv is not None:
                     lv.update(_table(view, status(), title), refresh=True)
-        except KeyboardInterrupt:
-            interrupted = True
+        except KeyboardInterrupt:  # a second Ctrl-C: the default handler is back
+            interrupt.set()
             stop_pub.set()
         if pub_state["error"] is not None:
             raise pub_state["error"]
@@ -406,7 +456,7 @@ def run_demo(
             with contextlib.suppress(Exception):
                 gateway.close(final=True)
             summary = _summary(gateway, view, store, pub_state, time.monotonic() - wall0)
-            summary["interrupted"] = interrupted
+            summary["interrupted"] = interrupt.is_set()
         store.close()
         if embedded is not None:
             embedded.stop()
@@ -414,13 +464,35 @@ def run_demo(
     return summary
 
 
+def _catch_ctrl_c(interrupt: threading.Event) -> Any:
+    """Make the first Ctrl-C set ``interrupt`` (the demo then ends with its summary).
+
+    Start-up (the model, the ingest process, the subscription) is never cut in the middle;
+    the run stops at its next check. A second Ctrl-C raises KeyboardInterrupt as usual.
+    Returns the handler to put back, or None where signals cannot be caught (not the
+    main thread).
+    """
+    if threading.current_thread() is not threading.main_thread():
+        return None
+
+    def on_sigint(signum: int, frame: Any) -> None:
+        interrupt.set()
+        signal.signal(signal.SIGINT, signal.default_int_handler)
+
+    return signal.signal(signal.SIGINT, on_sigint)
+
+
 def _wait_drained(
-    gateway: Any, pub_state: dict[str, Any], gw_error: list, timeout_s: float = 30.0
+    gateway: Any,
+    pub_state: dict[str, Any],
+    gw_error: list,
+    interrupt: threading.Event,
+    timeout_s: float = 30.0,
 ) -> None:
     """After the last frame is published, let the gateway take what is still on its way."""
     deadline = time.monotonic() + timeout_s
     tel = gateway.telemetry
-    while time.monotonic() < deadline and not gw_error:
+    while time.monotonic() < deadline and not gw_error and not interrupt.is_set():
         if tel.value("boutline_messages_in_total") >= pub_state["frames"]:
             break
         time.sleep(0.1)
@@ -454,13 +526,14 @@ def _print_summary(console: Any, summary: dict[str, Any], view: HerdView) -> Non
     if not summary:
         return
     console.print()
-    t = Table(title="Minutes per behaviour over the run (smoothed, per animal)")
-    t.add_column("animal")
-    for c in view.classes:
-        t.add_column(c, justify="right")
-    for name, per in sorted(summary["minutes"].items()):
-        t.add_row(name, *(f"{per.get(c, 0.0):.0f}" for c in view.classes))
-    console.print(t)
+    if summary["minutes"]:  # none if Ctrl-C came before the first window
+        t = Table(title="Minutes per behaviour over the run (smoothed, per animal)")
+        t.add_column("animal")
+        for c in view.classes:
+            t.add_column(c, justify="right")
+        for name, per in sorted(summary["minutes"].items()):
+            t.add_row(name, *(f"{per.get(c, 0.0):.0f}" for c in view.classes))
+        console.print(t)
     rejects = ", ".join(f"{k} {v:.0f}" for k, v in summary["rejects"].items()) or "none"
     console.print(
         f"{'Interrupted' if summary.get('interrupted') else 'Done'}: {summary['animals']} animals,"
