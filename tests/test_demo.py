@@ -64,7 +64,9 @@ def test_demo_runs_a_herd_through_the_embedded_broker_into_the_store(
     assert "consult a veterinarian" in text.replace("\n", " ")
 
 
-def _demo_process(tmp_path: Path, model: Path) -> tuple[subprocess.Popen, list[str]]:
+def _demo_process(
+    tmp_path: Path, model: Path
+) -> tuple[subprocess.Popen, list[str], threading.Thread]:
     """The demo in a child process, its output lines collected as they come."""
     env = dict(os.environ, COLUMNS="160")
     proc = subprocess.Popen(
@@ -86,11 +88,12 @@ def _demo_process(tmp_path: Path, model: Path) -> tuple[subprocess.Popen, list[s
 
     reader = threading.Thread(target=read, daemon=True)
     reader.start()
-    proc.reader = reader  # type: ignore[attr-defined]
-    return proc, lines
+    return proc, lines, reader
 
 
-def _interrupt(proc: subprocess.Popen, lines: list[str], ready: Any) -> str:
+def _interrupt(
+    proc: subprocess.Popen, lines: list[str], reader: threading.Thread, ready: Any
+) -> str:
     try:
         deadline = time.monotonic() + 90
         while not ready():
@@ -103,12 +106,12 @@ def _interrupt(proc: subprocess.Popen, lines: list[str], ready: Any) -> str:
         if proc.poll() is None:
             proc.kill()  # the process started above, by its handle
             proc.wait(10)
-    proc.reader.join(10)  # type: ignore[attr-defined]  # the last lines
+    reader.join(10)  # the last lines
     return "".join(lines)
 
 
 def test_ctrl_c_ends_the_demo_cleanly_with_a_summary(tmp_path: Path, model: Path) -> None:
-    proc, lines = _demo_process(tmp_path, model)
+    proc, lines, reader = _demo_process(tmp_path, model)
     started: list[float] = []
 
     def ready() -> bool:  # four seconds of frames after the start line
@@ -116,7 +119,7 @@ def test_ctrl_c_ends_the_demo_cleanly_with_a_summary(tmp_path: Path, model: Path
             started.append(time.monotonic())
         return bool(started) and time.monotonic() - started[0] > 4.0
 
-    text = _interrupt(proc, lines, ready)
+    text = _interrupt(proc, lines, reader, ready)
     assert proc.returncode == 0, text
     m = re.search(r"Interrupted: (\d+) animals, (\d+) of (\d+) frames taken", text)
     assert m and int(m[1]) == 2 and int(m[2]) > 0, text
@@ -126,8 +129,8 @@ def test_ctrl_c_ends_the_demo_cleanly_with_a_summary(tmp_path: Path, model: Path
 def test_ctrl_c_during_start_up_still_ends_with_a_summary(tmp_path: Path, model: Path) -> None:
     # The signal comes while the model loads and the ingest process starts: nothing of the
     # start-up may be cut in half (no traceback), and the exit code is 0.
-    proc, lines = _demo_process(tmp_path, model)
-    text = _interrupt(proc, lines, lambda: (tmp_path / "d" / "boutline.db").exists())
+    proc, lines, reader = _demo_process(tmp_path, model)
+    text = _interrupt(proc, lines, reader, lambda: (tmp_path / "d" / "boutline.db").exists())
     assert proc.returncode == 0, text
     assert "Interrupted: " in text and "Traceback" not in text, text
     assert "examine the animal" in text  # the caution is printed on every ending

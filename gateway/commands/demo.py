@@ -16,6 +16,7 @@ import signal
 import threading
 import time
 from collections import defaultdict
+from collections.abc import Iterator
 from dataclasses import dataclass, field
 from datetime import UTC, datetime
 from pathlib import Path
@@ -228,43 +229,6 @@ def run_demo(
 
     The first Ctrl-C ends it with the summary, wherever it comes (start-up included).
     """
-    interrupt = threading.Event()
-    old_handler = _catch_ctrl_c(interrupt)
-    try:
-        return _run_demo(
-            herd=herd,
-            speed=speed,
-            duration_s=duration_s,
-            broker=broker,
-            seed=seed,
-            scenario=scenario,
-            data_dir=data_dir,
-            model=model,
-            live=live,
-            max_wall_s=max_wall_s,
-            console=console,
-            interrupt=interrupt,
-        )
-    finally:
-        if old_handler is not None:
-            signal.signal(signal.SIGINT, old_handler)
-
-
-def _run_demo(
-    *,
-    herd: int,
-    speed: float | None,
-    duration_s: float,
-    broker: str | None,
-    seed: int,
-    scenario: str,
-    data_dir: Path | None,
-    model: Path | None,
-    live: bool,
-    max_wall_s: float | None,
-    console: Any,
-    interrupt: threading.Event,
-) -> dict[str, Any]:
     from rich.console import Console
     from rich.live import Live
 
@@ -284,202 +248,209 @@ def _run_demo(
         raise ConfigError(f"--herd {herd}: give 1 to 2000 animals")
     if speed is not None and not 0 < speed <= 100_000:
         raise ConfigError(f"--speed {speed:g}: give more than 0 (1 = real time), or --flat-out")
-    embedded = None
-    if broker:
-        host, _, port_text = broker.rpartition(":")
-        if not host or not port_text.isdigit() or not 0 < int(port_text) < 65536:
-            raise ConfigError(f"--broker {broker!r}: write HOST:PORT, e.g. 127.0.0.1:1883")
-        port = int(port_text)
-    else:
-        embedded = EmbeddedBroker().start()
-        host, port = embedded.host, embedded.port
-    stamp = datetime.now(UTC).strftime("%Y%m%d-%H%M%S")
-    data_dir = Path(data_dir or Path("boutline-demo") / f"run-{stamp}")
-    # Sent in the past so the herd's last frame is "now": the collar clocks stay plausible.
-    start = math.floor((time.time() - duration_s) / 60.0) * 60.0
-    rate = 4.0 * (speed or 10_000.0) / _FRAME_S  # frames per collar per second, with headroom
-    herd_kwargs = {
-        "n_animals": herd,
-        "seed": seed,
-        "scenario": scenario,
-        "start": start,
-        "frame_s": _FRAME_S,
-    }
-    data_dir.mkdir(parents=True, exist_ok=True)
-    assignments = data_dir / "assignments.csv"
-    rows = Herd(**herd_kwargs).assignments
-    assignments.write_text(
-        "collar,animal,from,to\n"
-        + "".join(f"{r['collar']},{r['animal']},{r['from']},{r['to']}\n" for r in rows)
-    )
-    settings = Settings.model_validate(
-        {
-            "site": {"id": SITE, "unknown_collars": "adopt", "assignments": str(assignments)},
-            "mqtt": {
-                "host": host,
-                "port": port,
-                "protocol": "3.1.1" if embedded else "5",
-                "client_id": f"boutline-demo-{stamp}",
-                "reconnect_min_s": 0.5,
-                "reconnect_max_s": 5.0,
-                "session_expiry_s": 0,  # a demo leaves no session behind on a real broker
-            },
-            "model": {"path": str(model) if model else "", "watch": False},
-            "windows": {"clock_past_s": min(30 * 86400.0, duration_s + 86400.0)},
-            "limits": {"max_frame_rate_hz": min(1000.0, rate), "max_collars": max(herd, 1)},
-            "store": {"data_dir": str(data_dir)},
-            "outputs": {"mqtt": False},
-            "http": {"enabled": False},
+    interrupt = threading.Event()
+    with _first_ctrl_c_sets(interrupt):
+        embedded = None
+        if broker:
+            host, _, port_text = broker.rpartition(":")
+            if not host or not port_text.isdigit() or not 0 < int(port_text) < 65536:
+                raise ConfigError(f"--broker {broker!r}: write HOST:PORT, e.g. 127.0.0.1:1883")
+            port = int(port_text)
+        else:
+            embedded = EmbeddedBroker().start()
+            host, port = embedded.host, embedded.port
+        stamp = datetime.now(UTC).strftime("%Y%m%d-%H%M%S")
+        data_dir = Path(data_dir or Path("boutline-demo") / f"run-{stamp}")
+        # Sent in the past so the herd's last frame is "now": the collar clocks stay plausible.
+        start = math.floor((time.time() - duration_s) / 60.0) * 60.0
+        rate = 4.0 * (speed or 10_000.0) / _FRAME_S  # frames per collar per second, with headroom
+        herd_kwargs = {
+            "n_animals": herd,
+            "seed": seed,
+            "scenario": scenario,
+            "start": start,
+            "frame_s": _FRAME_S,
         }
-    )
-    telemetry = Telemetry()
-    store = Store.open(settings.data_dir / STORE_FILE)
-    gateway = pub_thread = gw_thread = None
-    stop_pub, stop_gw = threading.Event(), threading.Event()
-    pub_state: dict[str, Any] = {"frames": 0, "sim_s": 0.0, "result": None, "error": None}
-    gw_error: list[BaseException] = []
-    wall0 = time.monotonic()
-    try:
-        analytics = Analytics(settings, speed=speed)
-        gateway = Gateway(
-            settings, store=store, speed=speed, telemetry=telemetry, analytics=analytics
+        data_dir.mkdir(parents=True, exist_ok=True)
+        assignments = data_dir / "assignments.csv"
+        rows = Herd(**herd_kwargs).assignments
+        assignments.write_text(
+            "collar,animal,from,to\n"
+            + "".join(f"{r['collar']},{r['animal']},{r['from']},{r['to']}\n" for r in rows)
         )
-        view = HerdView(gateway.model.classes)
-        gateway.listeners.append(view)
-        ingest = open_ingest(settings, topic_filter=gateway.topic_filter, telemetry=telemetry)
+        settings = Settings.model_validate(
+            {
+                "site": {"id": SITE, "unknown_collars": "adopt", "assignments": str(assignments)},
+                "mqtt": {
+                    "host": host,
+                    "port": port,
+                    "protocol": "3.1.1" if embedded else "5",
+                    "client_id": f"boutline-demo-{stamp}",
+                    "reconnect_min_s": 0.5,
+                    "reconnect_max_s": 5.0,
+                    "session_expiry_s": 0,  # a demo leaves no session behind on a real broker
+                },
+                "model": {"path": str(model) if model else "", "watch": False},
+                "windows": {"clock_past_s": min(30 * 86400.0, duration_s + 86400.0)},
+                "limits": {"max_frame_rate_hz": min(1000.0, rate), "max_collars": max(herd, 1)},
+                "store": {"data_dir": str(data_dir)},
+                "outputs": {"mqtt": False},
+                "http": {"enabled": False},
+            }
+        )
+        telemetry = Telemetry()
+        store = Store.open(settings.data_dir / STORE_FILE)
+        gateway = pub_thread = gw_thread = None
+        stop_pub, stop_gw = threading.Event(), threading.Event()
+        pub_state: dict[str, Any] = {"frames": 0, "sim_s": 0.0, "result": None, "error": None}
+        gw_error: list[BaseException] = []
+        wall0 = time.monotonic()
+        try:
+            analytics = Analytics(settings, speed=speed)
+            gateway = Gateway(
+                settings, store=store, speed=speed, telemetry=telemetry, analytics=analytics
+            )
+            view = HerdView(gateway.model.classes)
+            gateway.listeners.append(view)
+            ingest = open_ingest(settings, topic_filter=gateway.topic_filter, telemetry=telemetry)
 
-        next_alerts = [0.0]
+            next_alerts = [0.0]
 
-        def alerts_now(result: Any) -> None:  # in the gateway's thread, which owns the store
-            if time.monotonic() >= next_alerts[0]:
-                next_alerts[0] = time.monotonic() + 1.0
-                view.set_alerts(analytics.open_alerts())
+            def alerts_now(result: Any) -> None:  # in the gateway's thread, which owns the store
+                if time.monotonic() >= next_alerts[0]:
+                    next_alerts[0] = time.monotonic() + 1.0
+                    view.set_alerts(analytics.open_alerts())
 
-        def gw_main() -> None:
-            try:
-                gateway.run(stop_gw, ingest=ingest, tick_s=0.25, on_tick=alerts_now)
-            except BaseException as exc:  # noqa: BLE001 - shown by the main thread
-                gw_error.append(exc)
+            def gw_main() -> None:
+                try:
+                    gateway.run(stop_gw, ingest=ingest, tick_s=0.25, on_tick=alerts_now)
+                except BaseException as exc:  # noqa: BLE001 - shown by the main thread
+                    gw_error.append(exc)
 
-        gw_thread = threading.Thread(target=gw_main, name="gateway", daemon=True)
-        gw_thread.start()
-        deadline = time.monotonic() + 15.0
-        while not ingest.wait_connected(0.25) and not interrupt.is_set():
-            if time.monotonic() > deadline or gw_error:
+            gw_thread = threading.Thread(target=gw_main, name="gateway", daemon=True)
+            gw_thread.start()
+            deadline = time.monotonic() + 15.0
+            while not ingest.wait_connected(0.25) and not interrupt.is_set():
                 if gw_error:
                     raise gw_error[0]
-                raise ConfigError(
-                    f"the gateway could not subscribe at {host}:{port}; is the broker up?"
-                )
+                if time.monotonic() > deadline:
+                    raise ConfigError(
+                        f"the gateway could not subscribe at {host}:{port}; is the broker up?"
+                    )
 
-        def report(frames: int, nbytes: int, sim_s: float) -> None:
-            pub_state["frames"], pub_state["sim_s"] = frames, sim_s
+            def report(frames: int, nbytes: int, sim_s: float) -> None:
+                pub_state["frames"], pub_state["sim_s"] = frames, sim_s
 
-        def pub_main() -> None:
+            def pub_main() -> None:
+                try:
+                    pub_state["result"] = publish_shard(
+                        host=host,
+                        port=port,
+                        site=SITE,
+                        prefix=settings.mqtt.topic_prefix,
+                        herd_kwargs=herd_kwargs,
+                        shard=(0, 1),
+                        speed=speed,
+                        fmt="json",
+                        qos=1,
+                        duration_s=duration_s,
+                        max_wall_s=max_wall_s,
+                        report=report,
+                        stop=stop_pub,
+                    )
+                except BaseException as exc:  # noqa: BLE001 - shown by the main thread
+                    pub_state["error"] = exc
+
+            pace = "flat out" if speed is None else f"{speed:g}x"
+            title = f"Boutline demo: {herd} animals on {SITE}, {pace}; minutes today per behaviour"
+            if not interrupt.is_set():
+                pub_thread = threading.Thread(target=pub_main, name="simulator", daemon=True)
+                pub_thread.start()
+                if not live:
+                    console.print(f"{title}; store {data_dir}; Ctrl-C ends")
+
+            def status() -> dict[str, Any]:
+                s = gateway.status()
+                sim = view.sim_now
+                return {
+                    "caption": (
+                        f"herd clock {_hhmm(sim)} {view.today() if sim else ''} | published"
+                        f" {pub_state['frames']} frames, received {s['frames_in']:.0f}, rejected"
+                        f" {sum(s['rejects'].values()):.0f} | windows {s['windows_classified']:.0f}"
+                        f" | Ctrl-C ends"
+                    )
+                }
+
             try:
-                pub_state["result"] = publish_shard(
-                    host=host,
-                    port=port,
-                    site=SITE,
-                    prefix=settings.mqtt.topic_prefix,
-                    herd_kwargs=herd_kwargs,
-                    shard=(0, 1),
-                    speed=speed,
-                    fmt="json",
-                    qos=1,
-                    duration_s=duration_s,
-                    max_wall_s=max_wall_s,
-                    report=report,
-                    stop=stop_pub,
-                )
-            except BaseException as exc:  # noqa: BLE001 - shown by the main thread
-                pub_state["error"] = exc
-
-        pace = "flat out" if speed is None else f"{speed:g}x"
-        title = f"Boutline demo: {herd} animals on {SITE}, {pace}; minutes today per behaviour"
-        if not interrupt.is_set():
-            pub_thread = threading.Thread(target=pub_main, name="simulator", daemon=True)
-            pub_thread.start()
-            if not live:
-                console.print(f"{title}; store {data_dir}; Ctrl-C ends")
-
-        def status() -> dict[str, Any]:
-            s = gateway.status()
-            sim = view.sim_now
-            return {
-                "caption": (
-                    f"herd clock {_hhmm(sim)} {view.today() if sim else ''} | published"
-                    f" {pub_state['frames']} frames, received {s['frames_in']:.0f}, rejected"
-                    f" {sum(s['rejects'].values()):.0f} | windows {s['windows_classified']:.0f}"
-                    f" | Ctrl-C ends"
-                )
-            }
-
-        try:
-            with (
-                Live(
-                    _table(view, status(), title),
-                    console=console,
-                    refresh_per_second=2,
-                    transient=False,
-                    auto_refresh=False,
-                )
-                if live and not interrupt.is_set()
-                else contextlib.nullcontext() as lv
-            ):
-                while pub_thread and pub_thread.is_alive() and not gw_error:
-                    pub_thread.join(0.5)
-                    if interrupt.is_set():
-                        break
+                with (
+                    Live(
+                        _table(view, status(), title),
+                        console=console,
+                        refresh_per_second=2,
+                        transient=False,
+                        auto_refresh=False,
+                    )
+                    if live and not interrupt.is_set()
+                    else contextlib.nullcontext() as lv
+                ):
+                    while pub_thread and pub_thread.is_alive() and not gw_error:
+                        pub_thread.join(0.5)
+                        if interrupt.is_set():
+                            break
+                        if lv is not None:
+                            lv.update(_table(view, status(), title), refresh=True)
+                    if not interrupt.is_set():
+                        _wait_drained(gateway, pub_state, gw_error, interrupt)
                     if lv is not None:
                         lv.update(_table(view, status(), title), refresh=True)
-                if not interrupt.is_set():
-                    _wait_drained(gateway, pub_state, gw_error, interrupt)
-                if lv is not None:
-                    lv.update(_table(view, status(), title), refresh=True)
-        except KeyboardInterrupt:  # a second Ctrl-C: the default handler is back
-            interrupt.set()
+            except KeyboardInterrupt:  # a second Ctrl-C: the default handler is back
+                interrupt.set()
+                stop_pub.set()
+            if pub_state["error"] is not None:
+                raise pub_state["error"]
+            if gw_error:
+                raise gw_error[0]
+        finally:
             stop_pub.set()
-        if pub_state["error"] is not None:
-            raise pub_state["error"]
-        if gw_error:
-            raise gw_error[0]
-    finally:
-        stop_pub.set()
-        if pub_thread is not None:
-            pub_thread.join(35)
-        stop_gw.set()
-        if gw_thread is not None:
-            gw_thread.join(15)
-        summary: dict[str, Any] = {}
-        if gateway is not None:
-            with contextlib.suppress(Exception):
-                gateway.close(final=True)
-            summary = _summary(gateway, view, store, pub_state, time.monotonic() - wall0)
-            summary["interrupted"] = interrupt.is_set()
-        store.close()
-        if embedded is not None:
-            embedded.stop()
-    _print_summary(console, summary, view)
-    return summary
+            if pub_thread is not None:
+                pub_thread.join(35)
+            stop_gw.set()
+            if gw_thread is not None:
+                gw_thread.join(15)
+            summary: dict[str, Any] = {}
+            if gateway is not None:
+                with contextlib.suppress(Exception):
+                    gateway.close(final=True)
+                summary = _summary(gateway, view, store, pub_state, time.monotonic() - wall0)
+                summary["interrupted"] = interrupt.is_set()
+            store.close()
+            if embedded is not None:
+                embedded.stop()
+        _print_summary(console, summary, view)
+        return summary
 
 
-def _catch_ctrl_c(interrupt: threading.Event) -> Any:
-    """Make the first Ctrl-C set ``interrupt`` (the demo then ends with its summary).
+@contextlib.contextmanager
+def _first_ctrl_c_sets(interrupt: threading.Event) -> Iterator[None]:
+    """Inside, the first Ctrl-C sets ``interrupt`` (the demo then ends with its summary).
 
     Start-up (the model, the ingest process, the subscription) is never cut in the middle;
     the run stops at its next check. A second Ctrl-C raises KeyboardInterrupt as usual.
-    Returns the handler to put back, or None where signals cannot be caught (not the
-    main thread).
+    Outside the main thread, where signals cannot be caught, nothing changes.
     """
     if threading.current_thread() is not threading.main_thread():
-        return None
+        yield
+        return
 
     def on_sigint(signum: int, frame: Any) -> None:
         interrupt.set()
         signal.signal(signal.SIGINT, signal.default_int_handler)
 
-    return signal.signal(signal.SIGINT, on_sigint)
+    old = signal.signal(signal.SIGINT, on_sigint)
+    try:
+        yield
+    finally:
+        signal.signal(signal.SIGINT, old)
 
 
 def _wait_drained(
