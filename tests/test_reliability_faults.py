@@ -433,7 +433,12 @@ def _small_filesystem_prefix(mount_point: Path, size_mb: int) -> list[str]:
 def _fill(directory: Path) -> int:
     """Write a file until the filesystem is full; its size."""
     n = 0
-    with (directory / "filler").open("wb") as f:
+    try:
+        f = (directory / "filler").open("wb")
+    except OSError as exc:  # full before the filler: say what filled it
+        sizes = {p.name: p.stat().st_size for p in directory.iterdir()}
+        raise AssertionError(f"{directory} is full before the filler ({exc}): {sizes}") from exc
+    with f:
         chunk = b"\0" * 65536
         try:
             while True:
